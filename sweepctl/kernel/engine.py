@@ -1,0 +1,485 @@
+"""Lyapunov engine: a batch of strips advanced together, QR re-orthogonalisation.
+
+The engine keeps, for each of ``S`` independent strips, a thin frame of ``M``
+orthonormal columns (``M = N`` for the positive half of the spectrum, ``2N`` for the
+whole) in ``C^{2N}``. Each layer's transfer matrix multiplies the frame; every few
+columns the frame is replaced by the ``Q`` of its Householder QR and ``log|R_ii|``
+is accumulated. After ``L`` measured layers ``γ_i = Σ log|R_ii| / L`` are the
+Lyapunov exponents per layer, largest first [1]_, [2]_.
+
+Re-orthogonalisation interval. A column of nodes has condition number
+``e^{2 max θ}``; products multiply condition numbers, so the sum of ``2 max θ`` over
+the columns applied since the last QR bounds the log of the frame's condition
+number. A QR is done before a column would take that bound above
+``ln(1e-3 / eps)`` (eps = double-precision unit roundoff), so the worst-case
+relative rounding error of the smallest ``R_ii`` stays at the 1e-3 level and the
+typical one, the bound being loose, orders of magnitude below. At ``p = 0``,
+``x = 0`` that is a QR every 8 layers; with blocking nodes at ``ε = 1e-6`` it is one
+every column. The bound is kept in integer units so that the schedule, and with it
+every bit of the result, is independent of how the layers are chunked.
+
+References
+----------
+.. [1] G. Benettin, L. Galgani, A. Giorgilli, J.-M. Strelcyn, Meccanica 15, 9 (1980).
+.. [2] A. MacKinnon and B. Kramer, Z. Phys. B 53, 1 (1983).
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import math
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from sweepctl import __version__
+from sweepctl.kernel._loops import apply_columns, unit_phases
+from sweepctl.kernel._qr import reorthogonalise
+from sweepctl.kernel.network import NetworkModel, draw_layers
+
+__all__ = [
+    "LOG_COND_BUDGET",
+    "LyapunovResult",
+    "PrecisionOutcome",
+    "StripState",
+    "advance_to_precision",
+    "default_warmup",
+    "lyapunov_spectrum",
+    "product_spectrum",
+]
+
+#: Log of the largest condition-number bound allowed between two QRs.
+LOG_COND_BUDGET = math.log(1e-3 / np.finfo(np.float64).eps)
+#: Growth bounds are summed as integers in units of 2**-24 (exact, associative).
+_GROWTH_SCALE = 2.0**24
+_STATE_FORMAT = 1
+#: Target number of uniform variates drawn per chunk (a few MB of memory).
+_CHUNK_VARIATES = 400_000
+
+SeedLike = int | np.random.SeedSequence
+
+
+def default_warmup(width: int) -> int:
+    """Layers discarded before accumulating: ``max(5N, 32)``, a few localisation lengths."""
+    return max(5 * width, 32)
+
+
+def _generator(seed: SeedLike) -> np.random.Generator:
+    if isinstance(seed, np.random.SeedSequence):
+        return np.random.Generator(np.random.PCG64(seed))
+    if isinstance(seed, (int, np.integer)) and not isinstance(seed, bool) and seed >= 0:
+        return np.random.Generator(np.random.PCG64(np.random.SeedSequence(int(seed))))
+    raise ValueError(f"seed must be a non-negative int or a numpy SeedSequence, got {seed!r}")
+
+
+@dataclass(frozen=True)
+class LyapunovResult:
+    """Exponents of a batch of strips after ``layers`` measured layers.
+
+    Attributes
+    ----------
+    exponents
+        ``(S, M)`` per-layer exponents of each strip in frame order (descending up
+        to statistical fluctuation); ``M = N`` unless the full spectrum was asked.
+    layers
+        Measured layers (after the warm-up).
+    width
+        ``N``.
+    sum_rule
+        ``(S,)``: ``Σ -ln t`` over the nodes each strip actually went through, per
+        layer. The sum of the ``N`` positive exponents of a strip converges to it
+        (derived: Jensen's formula, uniform phases).
+    """
+
+    exponents: np.ndarray
+    layers: int
+    width: int
+    sum_rule: np.ndarray
+
+    @property
+    def gamma(self) -> np.ndarray:
+        """``(S,)``: the smallest positive exponent ``γ`` of each strip."""
+        return self.exponents[:, self.width - 1]
+
+    @property
+    def Gamma_strips(self) -> np.ndarray:  # noqa: N802 - physics notation
+        """``(S,)``: ``Γ = N·γ`` of each strip."""
+        return self.width * self.gamma
+
+    @property
+    def Gamma(self) -> float:  # noqa: N802
+        """Mean of ``Γ = N·γ`` over strips."""
+        return float(np.mean(self.Gamma_strips))
+
+    @property
+    def Gamma_err(self) -> float:  # noqa: N802
+        """Standard error of :attr:`Gamma` from the spread across strips (NaN for one strip)."""
+        g = self.Gamma_strips
+        if g.size < 2:
+            return math.nan
+        return float(np.std(g, ddof=1) / math.sqrt(g.size))
+
+
+@dataclass
+class StripState:
+    """Everything needed to continue a batch of strips: frame, accumulators, RNG state.
+
+    Create with :meth:`start`, move on with :meth:`advance`, read with
+    :meth:`result`, and persist with :meth:`to_bytes` / :meth:`from_bytes`. A state
+    restored from bytes continues bit-identically to one that was never saved.
+    """
+
+    model: NetworkModel
+    strips: int
+    warmup: int
+    frame: np.ndarray
+    log_sum: np.ndarray
+    node_counts: np.ndarray
+    layers_done: int
+    growth_since_qr: int
+    rng: np.random.Generator = field(repr=False)
+    budget: int = int(LOG_COND_BUDGET * _GROWTH_SCALE)
+
+    # -- construction -----------------------------------------------------------------
+    @classmethod
+    def start(
+        cls,
+        model: NetworkModel,
+        *,
+        strips: int = 8,
+        seed: SeedLike = 0,
+        warmup: int | None = None,
+        full: bool = False,
+        log_cond_budget: float = LOG_COND_BUDGET,
+    ) -> StripState:
+        """A fresh batch of ``strips`` strips with random initial frames.
+
+        Parameters
+        ----------
+        model
+            The network.
+        strips
+            Independent strips advanced together (``>= 1``).
+        seed
+            ``SeedSequence`` or non-negative int; it fixes the whole computation.
+        warmup
+            Layers discarded before accumulating (default :func:`default_warmup`).
+        full
+            Track all ``2N`` exponents instead of the positive ``N``.
+        log_cond_budget
+            Re-orthogonalisation threshold (log of the condition-number bound);
+            only tests change it.
+        """
+        if isinstance(strips, bool) or not isinstance(strips, (int, np.integer)) or strips < 1:
+            raise ValueError(f"strips must be an integer >= 1, got {strips!r}")
+        if warmup is None:
+            warmup = default_warmup(model.width)
+        if warmup < 0:
+            raise ValueError(f"warmup must be >= 0, got {warmup}")
+        if not log_cond_budget > 0:
+            raise ValueError(f"log_cond_budget must be positive, got {log_cond_budget}")
+        rng = _generator(seed)
+        m = model.links if full else model.width
+        shape = (int(strips), model.links, m)
+        frame = rng.standard_normal(shape) + 1j * rng.standard_normal(shape)
+        reorthogonalise(frame)
+        return cls(
+            model=model,
+            strips=int(strips),
+            warmup=int(warmup),
+            frame=frame,
+            log_sum=np.zeros((int(strips), m)),
+            node_counts=np.zeros((int(strips), 2, 3), dtype=np.int64),
+            layers_done=0,
+            growth_since_qr=0,
+            rng=rng,
+            budget=int(log_cond_budget * _GROWTH_SCALE),
+        )
+
+    # -- evolution --------------------------------------------------------------------
+    @property
+    def measured_layers(self) -> int:
+        """Layers accumulated after the warm-up."""
+        return max(0, self.layers_done - self.warmup)
+
+    def _chunk_layers(self) -> int:
+        per_layer = self.strips * max(self.model.draws_per_layer, 2 * self.model.width)
+        return int(min(4096, max(8, _CHUNK_VARIATES // per_layer)))
+
+    def _qr(self, measuring: bool) -> None:
+        logd = reorthogonalise(self.frame)
+        if measuring:
+            self.log_sum += logd
+        self.growth_since_qr = 0
+
+    def advance(self, layers: int) -> StripState:
+        """Advance every strip by ``layers`` layers (warm-up first). Returns ``self``."""
+        if isinstance(layers, bool) or not isinstance(layers, (int, np.integer)) or layers < 0:
+            raise ValueError(f"layers must be a non-negative integer, got {layers!r}")
+        model, n = self.model, self.model.width
+        table = model.node_table()
+        growth_int = np.ceil(model.growth_table() * _GROWTH_SCALE).astype(np.int64)
+        view = self.frame.view(np.float64)
+        remaining = int(layers)
+        while remaining > 0:
+            k = min(self._chunk_layers(), remaining)
+            if self.layers_done < self.warmup:
+                k = min(k, self.warmup - self.layers_done)
+            measuring = self.layers_done >= self.warmup
+            draws = draw_layers(model, self.rng, k, self.strips)
+            if model.phase_disorder:
+                u = np.ascontiguousarray(draws.uniforms[:, :, : 4 * n])
+                pcos = np.empty_like(u)
+                psin = np.empty_like(u)
+                unit_phases(u, pcos, psin)
+            else:
+                pcos = np.ones((k, self.strips, 4 * n))
+                psin = np.zeros((k, self.strips, 4 * n))
+            kinds = draws.kinds
+            kk = kinds.reshape(k, self.strips, 2, n)
+            # Growth bound of each column: max over its nodes and over strips.
+            g = np.stack(
+                [growth_int[h][kk[:, :, h]].max(axis=(1, 2)) for h in (0, 1)], axis=1
+            ).reshape(-1)
+            if measuring:
+                for half in (0, 1):
+                    for kind in range(3):
+                        self.node_counts[:, half, kind] += np.count_nonzero(
+                            kk[:, :, half] == kind, axis=(0, 2)
+                        )
+            self._apply_scheduled(view, kinds, pcos, psin, table, g, measuring)
+            self.layers_done += k
+            remaining -= k
+            if self.layers_done == self.warmup and self.warmup > 0:
+                # Warm-up ends: start accumulating from an orthonormal frame.
+                self._qr(measuring=False)
+        return self
+
+    def _apply_scheduled(self, view, kinds, pcos, psin, table, g, measuring) -> None:
+        n_cols = g.size
+        cum = np.cumsum(g)
+        col = 0
+        while col < n_cols:
+            before = int(cum[col - 1]) if col > 0 else 0
+            # Columns col..end-1 fit if growth_since_qr + cum[end-1] - before <= budget.
+            end = int(np.searchsorted(cum, self.budget - self.growth_since_qr + before, "right"))
+            if end <= col:
+                if self.growth_since_qr > 0:
+                    self._qr(measuring)
+                    continue
+                end = col + 1  # a single column above the budget: apply it alone
+            apply_columns(view, kinds, pcos, psin, table, col, end)
+            self.growth_since_qr += int(cum[end - 1]) - before
+            col = end
+
+    # -- read-out ---------------------------------------------------------------------
+    def result(self) -> LyapunovResult:
+        """Exponents so far, without changing the state (a QR of a copy of the frame)."""
+        n_meas = self.measured_layers
+        if n_meas == 0:
+            raise ValueError(
+                f"no measured layers yet (warm-up is {self.warmup} layers, "
+                f"{self.layers_done} done); advance further before reading exponents"
+            )
+        logd = reorthogonalise(self.frame.copy())
+        exps = (self.log_sum + logd) / n_meas
+        w = self.model.neg_log_t_table()
+        sum_rule = np.einsum("shk,hk->s", self.node_counts, w) / n_meas
+        return LyapunovResult(
+            exponents=exps, layers=n_meas, width=self.model.width, sum_rule=sum_rule
+        )
+
+    # -- persistence ------------------------------------------------------------------
+    def to_bytes(self) -> bytes:
+        """Serialise (NumPy ``.npz`` with a JSON header; no pickle)."""
+        m = self.model
+        meta = {
+            "format": _STATE_FORMAT,
+            "sweepctl_version": __version__,
+            "numpy_version": np.__version__,
+            "model": {
+                "width": m.width,
+                "x": m.x,
+                "p_block": m.p_block,
+                "p_open": m.p_open,
+                "epsilon": m.epsilon,
+                "phase_disorder": m.phase_disorder,
+            },
+            "strips": self.strips,
+            "warmup": self.warmup,
+            "layers_done": self.layers_done,
+            "growth_since_qr": self.growth_since_qr,
+            "budget": self.budget,
+            "bit_generator": self.rng.bit_generator.state,
+        }
+        buf = io.BytesIO()
+        np.savez(
+            buf,
+            meta=np.frombuffer(json.dumps(meta).encode(), dtype=np.uint8),
+            frame=self.frame,
+            log_sum=self.log_sum,
+            node_counts=self.node_counts,
+        )
+        return buf.getvalue()
+
+    @classmethod
+    def from_bytes(cls, data: bytes) -> StripState:
+        """Inverse of :meth:`to_bytes`."""
+        with np.load(io.BytesIO(data), allow_pickle=False) as z:
+            meta = json.loads(z["meta"].tobytes().decode())
+            if meta.get("format") != _STATE_FORMAT:
+                raise ValueError(f"unsupported strip-state format {meta.get('format')!r}")
+            bg_state = meta["bit_generator"]
+            if bg_state["bit_generator"] != "PCG64":
+                raise ValueError(f"unsupported bit generator {bg_state['bit_generator']!r}")
+            bitgen = np.random.PCG64()
+            bitgen.state = bg_state
+            return cls(
+                model=NetworkModel(**meta["model"]),
+                strips=int(meta["strips"]),
+                warmup=int(meta["warmup"]),
+                frame=np.array(z["frame"]),
+                log_sum=np.array(z["log_sum"]),
+                node_counts=np.array(z["node_counts"]),
+                layers_done=int(meta["layers_done"]),
+                growth_since_qr=int(meta["growth_since_qr"]),
+                rng=np.random.Generator(bitgen),
+                budget=int(meta["budget"]),
+            )
+
+
+def lyapunov_spectrum(
+    width: int,
+    x: float,
+    layers: int,
+    *,
+    strips: int = 8,
+    seed: SeedLike = 0,
+    p_block: float = 0.0,
+    p_open: float = 0.0,
+    epsilon: float = 1e-6,
+    warmup: int | None = None,
+    phase_disorder: bool = True,
+    full: bool = False,
+) -> LyapunovResult:
+    """Lyapunov exponents of ``strips`` independent network strips.
+
+    Parameters
+    ----------
+    width
+        ``N`` nodes per column (``2N`` links, periodic).
+    x
+        Coupling; ``x = 0`` is critical for the self-dual network.
+    layers
+        Measured layers, after ``warmup`` discarded ones.
+    strips, seed, warmup, full
+        See :meth:`StripState.start`.
+    p_block, p_open, epsilon, phase_disorder
+        See :class:`~sweepctl.kernel.network.NetworkModel`.
+
+    Returns
+    -------
+    LyapunovResult
+        ``.exponents`` ``(strips, N)`` per layer, descending; ``.Gamma`` the mean of
+        ``N·γ`` over strips and ``.Gamma_err`` its standard error; ``.layers``.
+
+    Examples
+    --------
+    >>> r = lyapunov_spectrum(4, 0.0, 2000, strips=4, seed=1)
+    >>> r.exponents.shape
+    (4, 4)
+    """
+    model = NetworkModel(
+        width=width,
+        x=float(x),
+        p_block=float(p_block),
+        p_open=float(p_open),
+        epsilon=float(epsilon),
+        phase_disorder=phase_disorder,
+    )
+    if isinstance(layers, bool) or not isinstance(layers, (int, np.integer)) or layers < 1:
+        raise ValueError(f"layers must be an integer >= 1, got {layers!r}")
+    state = StripState.start(model, strips=strips, seed=seed, warmup=warmup, full=full)
+    state.advance(state.warmup + int(layers))
+    return state.result()
+
+
+@dataclass(frozen=True)
+class PrecisionOutcome:
+    """What :func:`advance_to_precision` ended with.
+
+    ``reached`` is ``True`` when the relative standard error of ``Γ`` met the
+    target, ``False`` when the layer cap stopped it first.
+    """
+
+    result: LyapunovResult
+    reached: bool
+    rel_err: float
+
+    @property
+    def reason(self) -> str:
+        """``"precision"`` or ``"layer cap"``."""
+        return "precision" if self.reached else "layer cap"
+
+
+def advance_to_precision(
+    state: StripState, target: float, max_layers: int, check_every: int | None = None
+) -> PrecisionOutcome:
+    """Advance until ``Gamma_err / |Gamma| <= target`` or ``max_layers`` measured layers.
+
+    The check happens every ``check_every`` measured layers (default
+    ``max(1000, 20 N)``), at layer counts that depend only on the arguments, so the
+    stopping point is reproducible.
+    """
+    if not target > 0:
+        raise ValueError(f"target must be positive, got {target}")
+    if state.strips < 2:
+        raise ValueError("a precision target needs at least 2 strips (the error is their spread)")
+    if check_every is None:
+        check_every = max(1000, 20 * state.model.width)
+    if state.measured_layers == 0:
+        state.advance(state.warmup - state.layers_done + min(check_every, max_layers))
+    while True:
+        res = state.result()
+        rel = res.Gamma_err / abs(res.Gamma) if res.Gamma != 0 else math.inf
+        if rel <= target:
+            return PrecisionOutcome(res, True, rel)
+        if state.measured_layers >= max_layers:
+            return PrecisionOutcome(res, False, rel)
+        state.advance(min(check_every, max_layers - state.measured_layers))
+
+
+def product_spectrum(
+    sample: Callable[[np.random.Generator, int], np.ndarray],
+    n: int,
+    steps: int,
+    *,
+    strips: int = 8,
+    seed: SeedLike = 0,
+) -> np.ndarray:
+    """Lyapunov spectrum of a product of i.i.d. random ``n × n`` matrices.
+
+    Uses the same QR accumulation as the network engine, for checks against the
+    closed forms for Gaussian products.
+
+    Parameters
+    ----------
+    sample
+        ``sample(rng, strips)`` returns ``(strips, n, n)`` matrices.
+    n, steps, strips, seed
+        Matrix size, factors per strip, independent products, seed.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(strips, n)`` exponents per factor.
+    """
+    rng = _generator(seed)
+    frame = np.broadcast_to(np.eye(n, dtype=complex), (strips, n, n)).copy()
+    acc = np.zeros((strips, n))
+    for _ in range(steps):
+        frame = np.ascontiguousarray(np.matmul(sample(rng, strips), frame), dtype=complex)
+        acc += reorthogonalise(frame)
+    return acc / steps
