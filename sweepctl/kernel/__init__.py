@@ -14,7 +14,13 @@ from sweepctl.kernel.engine import (
     lyapunov_spectrum,
     product_spectrum,
 )
-from sweepctl.kernel.network import LayerDraws, NetworkModel, dense_layer, draw_layers
+from sweepctl.kernel.network import (
+    LayerDraws,
+    NetworkModel,
+    dense_column,
+    dense_layer,
+    draw_layers,
+)
 
 __all__ = [
     "LOG_COND_BUDGET",
@@ -25,6 +31,7 @@ __all__ = [
     "StripState",
     "advance_to_precision",
     "default_warmup",
+    "dense_column",
     "dense_layer",
     "draw_layers",
     "lyapunov_spectrum",

@@ -19,10 +19,10 @@ __all__ = ["reorthogonalise"]
 def _lwork(rows: int, cols: int, dtype: str) -> tuple[int, int]:
     a = np.zeros((rows, cols), dtype=dtype)
     geqrf, ungqr = lapack.get_lapack_funcs(("geqrf", "ungqr"), (a,))
-    _, _, work, info = geqrf(a, lwork=-1)
+    _, _, work, _ = geqrf(a, lwork=-1)
     lw_qr = max(int(work[0].real), 1)
     tau = np.zeros(min(rows, cols), dtype=dtype)
-    _, work, info = ungqr(a, tau, lwork=-1)
+    _, work, _ = ungqr(a, tau, lwork=-1)
     lw_q = max(int(work[0].real), 1)
     return lw_qr, lw_q
 

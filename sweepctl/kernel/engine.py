@@ -104,17 +104,17 @@ class LyapunovResult:
         return self.exponents[:, self.width - 1]
 
     @property
-    def Gamma_strips(self) -> np.ndarray:  # noqa: N802 - physics notation
+    def Gamma_strips(self) -> np.ndarray:
         """``(S,)``: ``Γ = N·γ`` of each strip."""
         return self.width * self.gamma
 
     @property
-    def Gamma(self) -> float:  # noqa: N802
+    def Gamma(self) -> float:
         """Mean of ``Γ = N·γ`` over strips."""
         return float(np.mean(self.Gamma_strips))
 
     @property
-    def Gamma_err(self) -> float:  # noqa: N802
+    def Gamma_err(self) -> float:
         """Standard error of :attr:`Gamma` from the spread across strips (NaN for one strip)."""
         g = self.Gamma_strips
         if g.size < 2:

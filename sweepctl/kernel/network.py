@@ -34,6 +34,7 @@ __all__ = [
     "OPEN",
     "LayerDraws",
     "NetworkModel",
+    "dense_column",
     "dense_layer",
     "draw_layers",
 ]
@@ -105,7 +106,7 @@ class NetworkModel:
         )
 
     def node_table(self) -> np.ndarray:
-        """Transfer-block coefficients, shape ``(2, 3, 2)``: ``[sublattice, kind, (cosh θ, sinh θ)]``.
+        """Node transfer-block coefficients ``[sublattice, kind, (cosh θ, sinh θ)]``, ``(2, 3, 2)``.
 
         Sublattice 0 is A, 1 is B; kinds are :data:`NORMAL`, :data:`BLOCKING`,
         :data:`OPEN`. ``cosh θ = 1/t`` and ``sinh θ = r/t`` with ``r² + t² = 1``.
@@ -194,30 +195,32 @@ def draw_layers(
     return LayerDraws(uniforms=u, kinds=kinds)
 
 
-def dense_layer(model: NetworkModel, draws: LayerDraws, layer: int, strip: int) -> np.ndarray:
-    """The full ``2N × 2N`` transfer matrix of one layer, built densely.
+def dense_column(
+    model: NetworkModel, draws: LayerDraws, layer: int, strip: int, half: int
+) -> np.ndarray:
+    """One column of nodes and its link phases as a dense ``2N × 2N`` matrix.
 
-    An independent, slow construction used to check the fast kernel: it builds
-    ``P_B · B · P_A · A`` from the same draws, with ``A`` and ``B`` block matrices of
-    node blocks and ``P`` diagonal phase matrices.
+    An independent, slow construction used to check the fast kernel: ``P · C`` with
+    ``C`` the block matrix of node blocks of sublattice ``half`` (0 = A, 1 = B) and
+    ``P`` the diagonal matrix of the phases that follow it.
     """
     n, nl = model.width, model.links
     tab = model.node_table()
     k = draws.kinds[layer, strip]
-    out = np.eye(nl, dtype=complex)
-    for half in (0, 1):
-        col = np.zeros((nl, nl))
-        for j in range(n):
-            c, s = tab[half, k[half * n + j]]
-            ia, ib = (2 * j + half) % nl, (2 * j + half + 1) % nl
-            col[ia, ia] += c
-            col[ib, ib] += c
-            col[ia, ib] += s
-            col[ib, ia] += s
-        if model.phase_disorder:
-            u = draws.uniforms[layer, strip, half * nl : (half + 1) * nl]
-            ph = np.diag(np.exp(2j * np.pi * u))
-        else:
-            ph = np.eye(nl)
-        out = ph @ col @ out
-    return out
+    col = np.zeros((nl, nl))
+    for j in range(n):
+        c, s = tab[half, k[half * n + j]]
+        ia, ib = (2 * j + half) % nl, (2 * j + half + 1) % nl
+        col[ia, ia] += c
+        col[ib, ib] += c
+        col[ia, ib] += s
+        col[ib, ia] += s
+    if model.phase_disorder:
+        u = draws.uniforms[layer, strip, half * nl : (half + 1) * nl]
+        return np.exp(2j * np.pi * u)[:, None] * col
+    return col.astype(complex)
+
+
+def dense_layer(model: NetworkModel, draws: LayerDraws, layer: int, strip: int) -> np.ndarray:
+    """The full ``2N × 2N`` transfer matrix ``P_B · B · P_A · A`` of one layer, built densely."""
+    return dense_column(model, draws, layer, strip, 1) @ dense_column(model, draws, layer, strip, 0)
