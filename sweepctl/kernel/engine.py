@@ -141,6 +141,8 @@ class StripState:
     growth_since_qr: int
     rng: np.random.Generator = field(repr=False)
     budget: int = int(LOG_COND_BUDGET * _GROWTH_SCALE)
+    #: QRs done by this object (a diagnostic for benchmarks; not persisted).
+    reorthogonalisations: int = 0
 
     # -- construction -----------------------------------------------------------------
     @classmethod
@@ -210,6 +212,7 @@ class StripState:
 
     def _qr(self, measuring: bool) -> None:
         logd = reorthogonalise(self.frame)
+        self.reorthogonalisations += 1
         if measuring:
             self.log_sum += logd
         self.growth_since_qr = 0
