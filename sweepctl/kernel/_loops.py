@@ -48,7 +48,7 @@ def unit_phases(u, cos_out, sin_out):  # pragma: no cover - compiled
         flat_s[n] = sa * cr + ca * sr
 
 
-@numba.njit(cache=True, nogil=True, boundscheck=False)
+@numba.njit(cache=True, nogil=True, boundscheck=False, fastmath={"contract"})
 def apply_columns(frame, kinds, pcos, psin, table, col0, col1):  # pragma: no cover - compiled
     """Apply node columns ``col0 <= c < col1`` of a chunk to every strip's frame, in place.
 
