@@ -1,0 +1,5 @@
+"""``python -m sweepctl``."""
+
+from sweepctl.cli import main
+
+main()
