@@ -1,0 +1,242 @@
+"""From a recipe to work: frozen settings, seeds, replica specs, rounds, cost.
+
+Seeds. A campaign has 128-bit entropy fixed when its store is created. Replica ``r``
+of point ``P`` is seeded by ``SeedSequence(entropy, spawn_key=(*P.key_ints, r))``,
+where ``key_ints`` derive from ``P``'s canonical parameters, never from its position
+in a list: adding widths later leaves every existing seed unchanged.
+
+Rounds. A point starts with ``initial`` replicas. Whenever every replica of the
+current prefix ``0..R-1`` is complete, the relative standard error of ``Γ`` over all
+their strips decides: done if it meets the target, otherwise enough further
+replicas to reach it (assuming error ∝ 1/√replicas, with 20 % margin), bounded by the
+cap. Decisions use complete prefixes only, so the number of replicas a point ends
+with depends neither on timing nor on the number of workers.
+"""
+
+from __future__ import annotations
+
+import math
+import secrets
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+
+from sweepctl.recipe import Point, Recipe, RecipeError
+
+__all__ = [
+    "CostModel",
+    "Frozen",
+    "ReplicaSpec",
+    "expected_replicas",
+    "freeze",
+    "next_target",
+    "replica_seed",
+    "check_compatible",
+]
+
+#: relative error of Γ ≈ √(c·N/(Γ·L)) for L measured strip-layers (c ≈ 0.6–0.8 near
+#: x = 0, measured here; no published source). Used for plans and estimates only.
+ERROR_CONSTANT = 0.7
+#: Γ assumed by plans before any data (near the critical value ≈ 0.8–0.9).
+GAMMA_GUESS = 0.85
+_MARGIN = 1.2
+#: Default per-point cap when the recipe gives none: this many replicas.
+DEFAULT_CAP_REPLICAS = 256
+
+
+def replica_seed(entropy: int, point: Point, replica: int) -> np.random.SeedSequence:
+    """The seed of replica ``replica`` of ``point``."""
+    return np.random.SeedSequence(entropy, spawn_key=(*point.key_ints, int(replica)))
+
+
+@dataclass
+class Frozen:
+    """Settings fixed when a store is created (or a width first appears) and kept.
+
+    ``replica_layers`` and ``max_layers`` are per width (a duration or CPU-hour budget
+    in the recipe is converted once, with this machine's calibration, so that results
+    never depend on machine speed afterwards).
+    """
+
+    entropy: int
+    strips: int
+    warmup: int | None
+    replica_layers: dict[int, int] = field(default_factory=dict)
+    max_layers: dict[int, int] = field(default_factory=dict)
+    replica_rule: dict = field(default_factory=dict)  # what the recipe said, for checks
+
+    def warmup_for(self, width: int) -> int:
+        from sweepctl.kernel import default_warmup
+
+        return self.warmup if self.warmup is not None else default_warmup(width)
+
+    def max_replicas(self, width: int) -> int:
+        return max(1, self.max_layers[width] // self.replica_layers[width])
+
+    def to_json(self) -> dict:
+        d = asdict(self)
+        d["entropy"] = f"{self.entropy:#x}"
+        d["replica_layers"] = {str(k): v for k, v in self.replica_layers.items()}
+        d["max_layers"] = {str(k): v for k, v in self.max_layers.items()}
+        return d
+
+    @classmethod
+    def from_json(cls, d: dict) -> Frozen:
+        return cls(
+            entropy=int(d["entropy"], 16),
+            strips=int(d["strips"]),
+            warmup=d["warmup"],
+            replica_layers={int(k): int(v) for k, v in d["replica_layers"].items()},
+            max_layers={int(k): int(v) for k, v in d["max_layers"].items()},
+            replica_rule=d.get("replica_rule", {}),
+        )
+
+
+def _rule(recipe: Recipe) -> dict:
+    return {
+        "layers": recipe.replica_layers,
+        "duration_seconds": recipe.replica_seconds,
+        "warmup": recipe.warmup,
+        "strips": recipe.strips,
+    }
+
+
+class CostModel:
+    """Seconds per strip-layer as a function of width, from a kernel calibration.
+
+    Log-log interpolation between calibrated widths; beyond them the nearest
+    segment's power law (at least N² growth) is extended.
+    """
+
+    def __init__(self, rows: list[dict]) -> None:
+        pts = sorted({int(r["width"]): 1.0 / float(r["strip_layers_per_second"]) for r in rows}.items())
+        if not pts:
+            raise ValueError("empty calibration")
+        self.widths = np.array([p[0] for p in pts], dtype=float)
+        self.secs = np.array([p[1] for p in pts], dtype=float)
+
+    def seconds_per_strip_layer(self, width: int) -> float:
+        w, s = self.widths, self.secs
+        if w.size == 1:
+            return float(s[0] * (width / w[0]) ** 2)
+        lw, ls = np.log(w), np.log(s)
+        x = math.log(width)
+        if x <= lw[0]:
+            slope = max((ls[1] - ls[0]) / (lw[1] - lw[0]), 0.0)
+            return float(math.exp(ls[0] + slope * (x - lw[0])))
+        if x >= lw[-1]:
+            slope = max((ls[-1] - ls[-2]) / (lw[-1] - lw[-2]), 2.0)
+            return float(math.exp(ls[-1] + slope * (x - lw[-1])))
+        return float(math.exp(np.interp(x, lw, ls)))
+
+    def replica_seconds(self, width: int, layers: int, warmup: int, strips: int) -> float:
+        return self.seconds_per_strip_layer(width) * strips * (layers + warmup)
+
+
+def freeze(recipe: Recipe, cost: CostModel | None, previous: Frozen | None = None) -> Frozen:
+    """Frozen settings for ``recipe``: new widths are added, existing ones kept."""
+    if previous is None:
+        entropy = recipe.entropy if recipe.entropy is not None else secrets.randbits(128)
+        fz = Frozen(entropy=entropy, strips=recipe.strips, warmup=recipe.warmup, replica_rule=_rule(recipe))
+    else:
+        fz = Frozen.from_json(previous.to_json())
+    for n in recipe.widths:
+        if n in fz.replica_layers:
+            continue
+        warm = fz.warmup_for(n)
+        if recipe.replica_layers is not None:
+            layers = recipe.replica_layers
+        else:
+            assert cost is not None and recipe.replica_seconds is not None
+            per_layer = cost.seconds_per_strip_layer(n) * recipe.strips
+            layers = max(64, int(recipe.replica_seconds / per_layer) - warm)
+        fz.replica_layers[n] = int(layers)
+        if recipe.max_layers is not None:
+            cap = recipe.max_layers
+        elif recipe.max_cpu_hours is not None:
+            assert cost is not None
+            per_layer = cost.seconds_per_strip_layer(n) * recipe.strips
+            cap = int(recipe.max_cpu_hours * 3600.0 / per_layer)
+        else:
+            cap = DEFAULT_CAP_REPLICAS * layers
+        fz.max_layers[n] = max(int(cap), int(layers))
+    return fz
+
+
+def check_compatible(recipe: Recipe, frozen: Frozen, source: str) -> None:
+    """Refuse recipe changes that would alter results already in the store."""
+    if recipe.entropy is not None and recipe.entropy != frozen.entropy:
+        raise RecipeError(
+            "campaign.entropy", f"{recipe.entropy:#x}",
+            f"the store was created with entropy {frozen.entropy:#x}; changing it would "
+            "change every seed — remove the line or use a new store", source,
+        )
+    old = frozen.replica_rule
+    new = _rule(recipe)
+    names = {"layers": "replica.layers", "duration_seconds": "replica.duration_seconds",
+             "warmup": "replica.warmup", "strips": "replica.strips"}
+    for k, field_name in names.items():
+        if old.get(k) != new[k]:
+            raise RecipeError(
+                field_name, new[k],
+                f"the store was made with {field_name} = {old.get(k)!r}; changing it would "
+                "change existing results — restore it or use a new store", source,
+            )
+
+
+@dataclass(frozen=True)
+class ReplicaSpec:
+    """Everything a worker needs to compute one replica (plain data, picklable)."""
+
+    point: Point
+    replica: int
+    entropy: int
+    layers: int
+    warmup: int
+    strips: int
+    checkpoint: str
+    checkpoint_seconds: float
+
+    @property
+    def key(self) -> str:
+        """Stable Dask key."""
+        return f"replica-{self.point.short}-{self.replica}"
+
+    def digest(self) -> str:
+        """Identity of the computation (not of where it checkpoints)."""
+        import hashlib
+
+        ident = f"{self.point.key}|r={self.replica}|e={self.entropy:#x}|L={self.layers}|w={self.warmup}|S={self.strips}"
+        return hashlib.sha256(ident.encode()).hexdigest()
+
+
+def relative_error(gamma_strips: np.ndarray) -> float:
+    """Relative standard error of the mean of per-strip Γ values."""
+    g = np.asarray(gamma_strips, dtype=float)
+    if g.size < 2:
+        return math.inf
+    mean = float(np.mean(g))
+    if mean == 0.0:
+        return math.inf
+    return float(np.std(g, ddof=1) / math.sqrt(g.size) / abs(mean))
+
+
+def next_target(prefix_gammas: list[np.ndarray], target: float, max_replicas: int) -> int:
+    """Replica count a point should reach, given the complete prefix ``0..R-1``.
+
+    Returns ``R`` when the target is met or the cap is reached (the point is done).
+    """
+    r = len(prefix_gammas)
+    if r >= max_replicas:
+        return r
+    rel = relative_error(np.concatenate(prefix_gammas)) if r else math.inf
+    if rel <= target:
+        return r
+    want = math.ceil(r * (rel / target) ** 2 * _MARGIN) if math.isfinite(rel) else 2 * r
+    return int(min(max_replicas, max(r + 1, want)))
+
+
+def expected_replicas(width: int, target: float, layers: int, strips: int, cap: int) -> int:
+    """A priori replica count from the error model (plans and estimates only)."""
+    strip_layers = ERROR_CONSTANT * width / (GAMMA_GUESS * target**2)
+    return int(min(cap, max(1, math.ceil(strip_layers / (layers * strips)))))

@@ -1,0 +1,534 @@
+"""Recipe files: schema, complete validation, canonical form and hash.
+
+A recipe is a TOML file::
+
+    [campaign]
+    name = "crossing-demo"
+    # entropy = 0x1234...        optional; otherwise drawn once when the store is created
+
+    [axes]
+    widths = [4, 8, 16]
+    couplings = { start = -0.3, stop = 0.3, num = 7 }     # or a list of numbers
+    disorder = [ { p = 0.0 }, { p_block = 0.1, p_open = 0.1 } ]
+    epsilon = [1e-6]
+
+    [precision]
+    target = 0.01              # relative standard error of Γ per point
+    max_layers = 5_000_000     # per-point cap on measured layers (or max_cpu_hours)
+
+    [replica]
+    layers = 20_000            # measured layers per replica (or duration_seconds)
+    warmup = 64                # or "auto": max(5N, 32) per width
+    strips = 8
+    initial = 2                # replicas in a point's first round
+
+Everything is checked before anything runs or is written; every problem is reported as
+``RecipeError`` with one line naming the field, the value and the way out.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import tomllib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+__all__ = ["Point", "Recipe", "RecipeError", "canonical_float", "load_recipe", "parse_recipe"]
+
+_SECTIONS = {
+    "campaign": {"name", "entropy", "description"},
+    "axes": {"widths", "couplings", "disorder", "epsilon"},
+    "precision": {"target", "max_layers", "max_cpu_hours"},
+    "replica": {"layers", "duration_seconds", "warmup", "strips", "initial", "checkpoint_seconds"},
+}
+_REQUIRED = {
+    "campaign": {"name"},
+    "axes": {"widths", "couplings"},
+    "precision": {"target"},
+    "replica": set(),
+}
+_MAX_WIDTH = 4096
+_MAX_POINTS = 1_000_000
+
+
+class RecipeError(ValueError):
+    """A recipe problem: ``field``, ``value`` and a one-line ``fix``."""
+
+    def __init__(self, field: str, value: Any, fix: str, source: str = "recipe") -> None:
+        self.field, self.value, self.fix, self.source = field, value, fix, source
+        super().__init__(f"{source}: {field} = {_show(value)}: {fix}")
+
+
+def _show(value: Any) -> str:
+    text = repr(value)
+    return text if len(text) <= 60 else text[:57] + "..."
+
+
+def canonical_float(v: float) -> float:
+    """Round to 12 significant digits and fold ``-0.0``: points typed or generated
+    differently (``0.1`` vs ``0.30000000000000004 - 0.2``) get one identity."""
+    r = float(f"{float(v):.12g}")
+    return 0.0 if r == 0.0 else r
+
+
+@dataclass(frozen=True, order=True)
+class Point:
+    """One point of a campaign: disorder, regularisation, width, coupling."""
+
+    p_block: float
+    p_open: float
+    epsilon: float
+    width: int
+    x: float
+
+    @property
+    def key(self) -> str:
+        """Canonical identity, independent of position in any list."""
+        return (
+            f"pb={self.p_block!r}|po={self.p_open!r}|eps={self.epsilon!r}"
+            f"|N={self.width}|x={self.x!r}"
+        )
+
+    @property
+    def key_ints(self) -> tuple[int, int, int, int]:
+        """Four 32-bit words from the key's SHA-256: the point's part of every spawn key."""
+        d = hashlib.sha256(self.key.encode()).digest()
+        return tuple(int.from_bytes(d[4 * i : 4 * i + 4], "little") for i in range(4))  # type: ignore[return-value]
+
+    @property
+    def short(self) -> str:
+        """Short hex id for file names and Dask keys."""
+        return hashlib.sha256(self.key.encode()).hexdigest()[:16]
+
+    def label(self) -> str:
+        """Human-readable form."""
+        return (
+            f"N={self.width} x={self.x:g} p_block={self.p_block:g} p_open={self.p_open:g} "
+            f"eps={self.epsilon:g}"
+        )
+
+
+@dataclass(frozen=True)
+class Recipe:
+    """A validated recipe."""
+
+    name: str
+    entropy: int | None
+    widths: tuple[int, ...]
+    couplings: tuple[float, ...]
+    disorder: tuple[tuple[float, float], ...]
+    epsilons: tuple[float, ...]
+    target: float
+    max_layers: int | None
+    max_cpu_hours: float | None
+    replica_layers: int | None
+    replica_seconds: float | None
+    warmup: int | None  # None = auto per width
+    strips: int
+    initial: int
+    checkpoint_seconds: float
+    description: str = ""
+
+    def points(self) -> list[Point]:
+        """All points, sorted by their canonical parameters."""
+        pts = {
+            Point(pb, po, eps, n, x)
+            for (pb, po) in self.disorder
+            for eps in self.epsilons
+            for n in self.widths
+            for x in self.couplings
+        }
+        return sorted(pts)
+
+    def warmup_for(self, width: int) -> int:
+        """Warm-up layers at ``width``."""
+        from sweepctl.kernel import default_warmup
+
+        return self.warmup if self.warmup is not None else default_warmup(width)
+
+    def canonical(self) -> dict:
+        """Canonical dict (sorted, normalised); its JSON is what :meth:`digest` hashes."""
+        return {
+            "name": self.name,
+            "entropy": None if self.entropy is None else f"{self.entropy:#x}",
+            "widths": list(self.widths),
+            "couplings": list(self.couplings),
+            "disorder": [list(d) for d in self.disorder],
+            "epsilon": list(self.epsilons),
+            "target": self.target,
+            "max_layers": self.max_layers,
+            "max_cpu_hours": self.max_cpu_hours,
+            "replica_layers": self.replica_layers,
+            "replica_seconds": self.replica_seconds,
+            "warmup": self.warmup,
+            "strips": self.strips,
+            "initial": self.initial,
+            "checkpoint_seconds": self.checkpoint_seconds,
+        }
+
+    @classmethod
+    def from_canonical(cls, d: dict) -> Recipe:
+        """Inverse of :meth:`canonical` (for recipes recorded in a store)."""
+        return cls(
+            name=d["name"],
+            entropy=None if d["entropy"] is None else int(d["entropy"], 16),
+            widths=tuple(d["widths"]),
+            couplings=tuple(d["couplings"]),
+            disorder=tuple(tuple(x) for x in d["disorder"]),
+            epsilons=tuple(d["epsilon"]),
+            target=d["target"],
+            max_layers=d["max_layers"],
+            max_cpu_hours=d["max_cpu_hours"],
+            replica_layers=d["replica_layers"],
+            replica_seconds=d["replica_seconds"],
+            warmup=d["warmup"],
+            strips=d["strips"],
+            initial=d["initial"],
+            checkpoint_seconds=d["checkpoint_seconds"],
+        )
+
+    def digest(self) -> str:
+        """SHA-256 of the canonical JSON."""
+        blob = json.dumps(self.canonical(), sort_keys=True, separators=(",", ":"))
+        return hashlib.sha256(blob.encode()).hexdigest()
+
+
+# ------------------------------------------------------------------------ checkers
+
+
+def _is_int(v: Any) -> bool:
+    return isinstance(v, int) and not isinstance(v, bool)
+
+
+def _is_num(v: Any) -> bool:
+    return (isinstance(v, (int, float)) and not isinstance(v, bool)) and math.isfinite(v)
+
+
+def _int(src: str, field: str, v: Any, lo: int, fix: str, hi: int | None = None) -> int:
+    if isinstance(v, float) and v.is_integer():
+        v = int(v)  # 5e6 written as a float is fine
+    if not _is_int(v) or v < lo or (hi is not None and v > hi):
+        raise RecipeError(field, v, fix, src)
+    return int(v)
+
+
+def _num(src: str, field: str, v: Any, fix: str) -> float:
+    if not _is_num(v):
+        raise RecipeError(field, v, fix, src)
+    return float(v)
+
+
+def _prob(src: str, field: str, v: Any) -> float:
+    p = _num(src, field, v, "a probability must be a number in [0, 1]")
+    if not 0.0 <= p <= 1.0:
+        raise RecipeError(field, v, "a probability must lie in [0, 1]", src)
+    return canonical_float(p)
+
+
+def _nonempty_list(src: str, field: str, v: Any, example: str) -> list:
+    if not isinstance(v, list):
+        raise RecipeError(field, v, f"must be a list, e.g. {example}", src)
+    if not v:
+        raise RecipeError(field, v, f"an axis needs at least one value, e.g. {example}", src)
+    return v
+
+
+def _unique(src: str, field: str, values: list, show: list) -> None:
+    seen: dict = {}
+    for v, s in zip(values, show, strict=True):
+        if v in seen:
+            raise RecipeError(
+                field, s, f"duplicate value (same point as {_show(seen[v])}); remove one", src
+            )
+        seen[v] = s
+
+
+def _couplings(src: str, v: Any) -> tuple[float, ...]:
+    field = "axes.couplings"
+    if isinstance(v, dict):
+        extra = set(v) - {"start", "stop", "num"}
+        if extra:
+            k = sorted(extra)[0]
+            raise RecipeError(
+                f"{field}.{k}", v[k], "unknown key; a range has start, stop and num", src
+            )
+        for k in ("start", "stop", "num"):
+            if k not in v:
+                raise RecipeError(field, v, f"a range needs start, stop and num (missing {k})", src)
+        a = _num(src, f"{field}.start", v["start"], "must be a number")
+        b = _num(src, f"{field}.stop", v["stop"], "must be a number")
+        n = _int(src, f"{field}.num", v["num"], 1, "must be an integer >= 1")
+        if n > 1 and not b > a:
+            raise RecipeError(f"{field}.stop", v["stop"], "stop must be greater than start", src)
+        xs = [a] if n == 1 else [a + (b - a) * i / (n - 1) for i in range(n)]
+        return tuple(canonical_float(x) for x in xs)
+    lst = _nonempty_list(src, field, v, "couplings = [-0.2, 0.0, 0.2]")
+    xs = [
+        _num(src, f"{field}[{i}]", x, "couplings must be finite numbers") for i, x in enumerate(lst)
+    ]
+    for i, x in enumerate(xs):
+        if abs(x) > 10:
+            raise RecipeError(f"{field}[{i}]", lst[i], "|x| > 10 is outside any useful range", src)
+    cx = [canonical_float(x) for x in xs]
+    _unique(src, field, cx, lst)
+    return tuple(cx)
+
+
+def _disorder(src: str, v: Any) -> tuple[tuple[float, float], ...]:
+    field = "axes.disorder"
+    lst = _nonempty_list(src, field, v, "disorder = [{ p = 0.0 }, { p_block = 0.1, p_open = 0.2 }]")
+    out = []
+    for i, d in enumerate(lst):
+        f = f"{field}[{i}]"
+        if not isinstance(d, dict):
+            raise RecipeError(
+                f,
+                d,
+                "each entry is a table like { p = 0.1 } or { p_block = 0.1, p_open = 0.1 }",
+                src,
+            )
+        extra = set(d) - {"p", "p_block", "p_open"}
+        if extra:
+            k = sorted(extra)[0]
+            raise RecipeError(f"{f}.{k}", d[k], "unknown key; use p, or p_block and p_open", src)
+        if "p" in d:
+            if "p_block" in d or "p_open" in d:
+                raise RecipeError(f, d, "give either p or p_block and p_open, not both", src)
+            pb = po = _prob(src, f"{f}.p", d["p"])
+        else:
+            if "p_block" not in d or "p_open" not in d:
+                raise RecipeError(f, d, "give p, or both p_block and p_open", src)
+            pb = _prob(src, f"{f}.p_block", d["p_block"])
+            po = _prob(src, f"{f}.p_open", d["p_open"])
+        if pb + po > 1.0 + 1e-12:
+            raise RecipeError(f, d, "p_block + p_open must not exceed 1", src)
+        out.append((pb, po))
+    _unique(src, field, out, lst)
+    return tuple(out)
+
+
+def parse_recipe(data: dict, source: str = "recipe") -> Recipe:
+    """Validate a decoded TOML document completely and return the :class:`Recipe`."""
+    if not isinstance(data, dict):  # pragma: no cover - tomllib always gives a dict
+        raise RecipeError("(top level)", data, "a recipe is a TOML document", source)
+    for sec in data:
+        if sec not in _SECTIONS:
+            raise RecipeError(
+                sec,
+                data[sec],
+                f"unknown section; sections are {', '.join(sorted(_SECTIONS))}",
+                source,
+            )
+    for sec, keys in _SECTIONS.items():
+        body = data.get(sec, {})
+        if not isinstance(body, dict):
+            raise RecipeError(sec, body, f"must be a table: [{sec}]", source)
+        for k in body:
+            if k not in keys:
+                raise RecipeError(
+                    f"{sec}.{k}",
+                    body[k],
+                    f"unknown key; [{sec}] takes {', '.join(sorted(keys))}",
+                    source,
+                )
+        for k in sorted(_REQUIRED[sec]):
+            if k not in body:
+                raise RecipeError(
+                    f"{sec}.{k}", None, f"missing; add {k} = ... under [{sec}]", source
+                )
+
+    c, a, p, r = (data.get(s, {}) for s in ("campaign", "axes", "precision", "replica"))
+    src = source
+
+    name = c["name"]
+    if not isinstance(name, str) or not name.strip() or len(name) > 120:
+        raise RecipeError(
+            "campaign.name", name, "give a non-empty name of at most 120 characters", src
+        )
+    entropy = c.get("entropy")
+    if entropy is not None:
+        if isinstance(entropy, str):
+            try:
+                entropy = int(entropy, 0)
+            except ValueError:
+                raise RecipeError(
+                    "campaign.entropy", c["entropy"], "write an integer, e.g. entropy = 0x5eed", src
+                ) from None
+        if not _is_int(entropy) or entropy < 0 or entropy >= 2**128:
+            raise RecipeError(
+                "campaign.entropy", c["entropy"], "must be an integer in [0, 2**128)", src
+            )
+    description = c.get("description", "")
+    if not isinstance(description, str):
+        raise RecipeError("campaign.description", description, "must be a string", src)
+
+    wl = _nonempty_list(src, "axes.widths", a["widths"], "widths = [4, 8, 16]")
+    widths = [
+        _int(
+            src,
+            f"axes.widths[{i}]",
+            w,
+            1,
+            f"widths must be integers from 1 to {_MAX_WIDTH}",
+            _MAX_WIDTH,
+        )
+        for i, w in enumerate(wl)
+    ]
+    _unique(src, "axes.widths", widths, wl)
+    couplings = _couplings(src, a["couplings"])
+    disorder = _disorder(src, a.get("disorder", [{"p": 0.0}]))
+    el = _nonempty_list(src, "axes.epsilon", a.get("epsilon", [1e-6]), "epsilon = [1e-6]")
+    eps = []
+    for i, e in enumerate(el):
+        v = _num(src, f"axes.epsilon[{i}]", e, "epsilon must be a number in (0, 0.1]")
+        if not (1e-12 <= v <= 0.1):
+            raise RecipeError(
+                f"axes.epsilon[{i}]",
+                e,
+                "epsilon must lie in [1e-12, 0.1] (a blocking node's transmission)",
+                src,
+            )
+        eps.append(canonical_float(v))
+    _unique(src, "axes.epsilon", eps, el)
+
+    target = _num(src, "precision.target", p["target"], "a relative precision such as 0.01")
+    if not 0.0 < target < 1.0:
+        raise RecipeError(
+            "precision.target", p["target"], "must be a relative error in (0, 1), e.g. 0.01", src
+        )
+    if "max_layers" in p and "max_cpu_hours" in p:
+        raise RecipeError(
+            "precision.max_cpu_hours",
+            p["max_cpu_hours"],
+            "give max_layers or max_cpu_hours, not both",
+            src,
+        )
+    max_layers = None
+    if "max_layers" in p:
+        max_layers = _int(
+            src, "precision.max_layers", p["max_layers"], 1, "must be a whole number of layers >= 1"
+        )
+    max_cpu = None
+    if "max_cpu_hours" in p:
+        max_cpu = _num(
+            src, "precision.max_cpu_hours", p["max_cpu_hours"], "must be a positive number of hours"
+        )
+        if max_cpu <= 0:
+            raise RecipeError(
+                "precision.max_cpu_hours", p["max_cpu_hours"], "must be positive", src
+            )
+
+    if "layers" in r and "duration_seconds" in r:
+        raise RecipeError(
+            "replica.duration_seconds",
+            r["duration_seconds"],
+            "give layers or duration_seconds, not both",
+            src,
+        )
+    rl = rs = None
+    if "layers" in r:
+        rl = _int(src, "replica.layers", r["layers"], 1, "must be a whole number of layers >= 1")
+    elif "duration_seconds" in r:
+        rs = _num(
+            src,
+            "replica.duration_seconds",
+            r["duration_seconds"],
+            "must be a positive number of seconds",
+        )
+        if rs <= 0:
+            raise RecipeError(
+                "replica.duration_seconds", r["duration_seconds"], "must be positive", src
+            )
+    else:
+        rs = 300.0
+    warm = r.get("warmup", "auto")
+    if warm == "auto":
+        warmup = None
+    else:
+        warmup = _int(
+            src, "replica.warmup", warm, 0, 'must be a whole number of layers >= 0 or "auto"'
+        )
+    strips = _int(
+        src,
+        "replica.strips",
+        r.get("strips", 8),
+        2,
+        "at least 2 strips (the error bar is their spread)",
+        4096,
+    )
+    initial = _int(
+        src,
+        "replica.initial",
+        r.get("initial", 2),
+        1,
+        "replicas in a point's first round, >= 1",
+        10_000,
+    )
+    ck = _num(
+        src,
+        "replica.checkpoint_seconds",
+        r.get("checkpoint_seconds", 180.0),
+        "a positive number of seconds",
+    )
+    if ck <= 0:
+        raise RecipeError(
+            "replica.checkpoint_seconds", r["checkpoint_seconds"], "must be positive", src
+        )
+    if max_layers is not None and rl is not None and max_layers < rl:
+        raise RecipeError(
+            "precision.max_layers",
+            max_layers,
+            f"the cap is below one replica ({rl} layers); raise it or shorten replica.layers",
+            src,
+        )
+
+    recipe = Recipe(
+        name=name.strip(),
+        entropy=entropy,
+        widths=tuple(widths),
+        couplings=couplings,
+        disorder=disorder,
+        epsilons=tuple(eps),
+        target=target,
+        max_layers=max_layers,
+        max_cpu_hours=max_cpu,
+        replica_layers=rl,
+        replica_seconds=rs,
+        warmup=warmup,
+        strips=strips,
+        initial=initial,
+        checkpoint_seconds=ck,
+        description=description,
+    )
+    n_points = len(widths) * len(couplings) * len(disorder) * len(eps)
+    if n_points > _MAX_POINTS:
+        raise RecipeError(
+            "axes", n_points, f"more than {_MAX_POINTS} points; split the campaign", src
+        )
+    return recipe
+
+
+def load_recipe(path: str | Path) -> Recipe:
+    """Read and validate a recipe file."""
+    path = Path(path)
+    src = str(path)
+    try:
+        raw = path.read_bytes()
+    except FileNotFoundError:
+        raise RecipeError("(file)", src, "no such file; check the path", src) from None
+    except OSError as exc:
+        raise RecipeError("(file)", src, f"cannot read it ({exc.strerror})", src) from None
+    try:
+        data = tomllib.loads(raw.decode("utf-8"))
+    except UnicodeDecodeError:
+        raise RecipeError(
+            "(file)", src, "not UTF-8 text; save the recipe as UTF-8 TOML", src
+        ) from None
+    except tomllib.TOMLDecodeError as exc:
+        raise RecipeError(
+            "(TOML)", str(exc), "fix the TOML syntax at the position given", src
+        ) from None
+    return parse_recipe(data, src)
