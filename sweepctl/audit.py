@@ -8,6 +8,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pyarrow.parquet as pq
 
+from sweepctl.errors import SweepctlError
 from sweepctl.plan import ReplicaSpec
 from sweepctl.recipe import Point
 from sweepctl.store import REPLICA_SCHEMA, Store, code_version
@@ -15,8 +16,18 @@ from sweepctl.summary import store_recipe
 
 __all__ = ["AuditReport", "audit_store", "parse_selector", "recompute", "seed_trace"]
 
-_PROVENANCE = ("worker", "host", "started", "finished", "sweepctl_version", "git_commit",
-               "numpy_version", "entropy", "spawn_key", "bit_generator")
+_PROVENANCE = (
+    "worker",
+    "host",
+    "started",
+    "finished",
+    "sweepctl_version",
+    "git_commit",
+    "numpy_version",
+    "entropy",
+    "spawn_key",
+    "bit_generator",
+)
 
 
 @dataclass
@@ -35,7 +46,7 @@ class AuditReport:
 def audit_store(store: Store) -> AuditReport:
     """Integrity checks; every problem is one line in ``report.problems``."""
     rep = AuditReport()
-    campaign, _, frozen = store_recipe(store)
+    _campaign, _, frozen = store_recipe(store)
     entropy = f"{frozen.entropy:#x}"
     pinned = REPLICA_SCHEMA.remove_metadata()
     seen: dict[tuple[str, int], str] = {}
@@ -43,7 +54,7 @@ def audit_store(store: Store) -> AuditReport:
         rep.files += 1
         try:
             t = pq.read_table(path)
-        except Exception as exc:  # noqa: BLE001 - any read failure is a finding
+        except Exception as exc:
             rep.problems.append(f"{path.name}: unreadable ({type(exc).__name__}: {exc})")
             continue
         if not t.schema.remove_metadata().equals(pinned):
@@ -65,16 +76,24 @@ def audit_store(store: Store) -> AuditReport:
             if pt.key != key:
                 rep.problems.append(f"{where}: point_key does not match its parameters")
             if d["entropy"][i] != entropy:
-                rep.problems.append(f"{where}: entropy {d['entropy'][i]} is not the campaign's {entropy}")
+                rep.problems.append(
+                    f"{where}: entropy {d['entropy'][i]} is not the campaign's {entropy}"
+                )
             if list(d["spawn_key"][i]) != [*pt.key_ints, r]:
-                rep.problems.append(f"{where}: spawn key does not derive from the point and replica")
+                rep.problems.append(
+                    f"{where}: spawn key does not derive from the point and replica"
+                )
             if d["bit_generator"][i] != "PCG64":
                 rep.problems.append(f"{where}: unknown bit generator {d['bit_generator'][i]}")
             g = d["gamma_strips"][i]
             if g is None or len(g) != d["strips"][i] or not np.all(np.isfinite(g)):
-                rep.problems.append(f"{where}: gamma_strips missing, of the wrong length or not finite")
+                rep.problems.append(
+                    f"{where}: gamma_strips missing, of the wrong length or not finite"
+                )
     for p in store.root.rglob(".*.tmp-*"):
-        rep.warnings.append(f"leftover temporary {p.relative_to(store.root)} (removed by the next run)")
+        rep.warnings.append(
+            f"leftover temporary {p.relative_to(store.root)} (removed by the next run)"
+        )
     n_bad = 0
     if store.events_file.exists():
         for line in store.events_file.read_text(errors="replace").splitlines():
@@ -97,15 +116,17 @@ def parse_selector(text: str) -> dict[str, float]:
         if not part.strip():
             continue
         if "=" not in part:
-            raise ValueError(f"--point: {part!r} is not key=value; write e.g. --point N=8,x=0.1")
+            raise SweepctlError(f"--point: {part!r} is not key=value; write e.g. --point N=8,x=0.1")
         k, v = (s.strip() for s in part.split("=", 1))
         k = {"N": "width", "n": "width", "eps": "epsilon"}.get(k, k)
         if k not in {"width", "x", "p", "p_block", "p_open", "epsilon"}:
-            raise ValueError(f"--point: unknown key {k!r}; use N, x, p, p_block, p_open, epsilon")
+            raise SweepctlError(
+                f"--point: unknown key {k!r}; use N, x, p, p_block, p_open, epsilon"
+            )
         try:
             out[k] = float(v)
         except ValueError:
-            raise ValueError(f"--point: {k}={v!r} is not a number") from None
+            raise SweepctlError(f"--point: {k}={v!r} is not a number") from None
     return out
 
 
@@ -124,15 +145,34 @@ def seed_trace(store: Store, selector: dict[str, float]) -> list[dict]:
     t = store.read_replicas()
     rows = [r for r in t.to_pylist() if _matches(r, selector)]
     rows.sort(key=lambda r: (r["point_key"], r["replica"]))
-    keep = ("point_key", "replica", "entropy", "spawn_key", "bit_generator", "layers", "warmup",
-            "strips", "Gamma", "worker", "host", "batch_job_id", "started", "finished",
-            "resumed_at_layer", "sweepctl_version", "git_commit", "numpy_version")
+    keep = (
+        "point_key",
+        "replica",
+        "entropy",
+        "spawn_key",
+        "bit_generator",
+        "layers",
+        "warmup",
+        "strips",
+        "Gamma",
+        "worker",
+        "host",
+        "batch_job_id",
+        "started",
+        "finished",
+        "resumed_at_layer",
+        "sweepctl_version",
+        "git_commit",
+        "numpy_version",
+    )
     return [{k: r[k] for k in keep} for r in rows]
 
 
-def recompute(store: Store, k: int, seed: int | None = None, selector: dict | None = None) -> list[dict]:
+def recompute(
+    store: Store, k: int, seed: int | None = None, selector: dict | None = None
+) -> list[dict]:
     """Recompute ``k`` random replicas from their logged seeds; compare bit for bit."""
-    _, _, frozen = store_recipe(store)
+    _, _, _frozen = store_recipe(store)
     rows = store.read_replicas().to_pylist()
     if selector:
         rows = [r for r in rows if _matches(r, selector)]
@@ -142,9 +182,16 @@ def recompute(store: Store, k: int, seed: int | None = None, selector: dict | No
     out = []
     for r in sorted(chosen, key=lambda r: (r["point_key"], r["replica"])):
         pt = Point(r["p_block"], r["p_open"], r["epsilon"], r["width"], r["x"])
-        spec = ReplicaSpec(point=pt, replica=r["replica"], entropy=int(r["entropy"], 16),
-                           layers=r["layers"], warmup=r["warmup"], strips=r["strips"],
-                           checkpoint="", checkpoint_seconds=1e9)
+        spec = ReplicaSpec(
+            point=pt,
+            replica=r["replica"],
+            entropy=int(r["entropy"], 16),
+            layers=r["layers"],
+            warmup=r["warmup"],
+            strips=r["strips"],
+            checkpoint="",
+            checkpoint_seconds=1e9,
+        )
         from sweepctl.worker import compute_replica
 
         new = compute_replica(spec, use_checkpoint=False)
@@ -152,10 +199,19 @@ def recompute(store: Store, k: int, seed: int | None = None, selector: dict | No
             np.asarray(new.gamma_strips).tobytes() == np.asarray(r["gamma_strips"]).tobytes()
             and np.asarray(new.exponents).tobytes() == np.asarray(r["exponents"]).tobytes()
         )
-        out.append({
-            "point_key": r["point_key"], "replica": r["replica"], "identical": bool(same),
-            "stored_Gamma": r["Gamma"], "recomputed_Gamma": float(np.mean(new.gamma_strips)),
-            "stored_code": f"{r['sweepctl_version']} {r['git_commit']} numpy {r['numpy_version']}",
-            "current_code": f"{here['sweepctl_version']} {here['git_commit']} numpy {here['numpy_version']}",
-        })
+        out.append(
+            {
+                "point_key": r["point_key"],
+                "replica": r["replica"],
+                "identical": bool(same),
+                "stored_Gamma": r["Gamma"],
+                "recomputed_Gamma": float(np.mean(new.gamma_strips)),
+                "stored_code": _code_text(r),
+                "current_code": _code_text(here),
+            }
+        )
     return out
+
+
+def _code_text(d: dict) -> str:
+    return f"{d['sweepctl_version']} {d['git_commit']} numpy {d['numpy_version']}"

@@ -8,17 +8,28 @@ frame ``8 (4 N M² − 2 M³/3)`` per re-orthogonalisation.
 
 from __future__ import annotations
 
+import json
+import os
 import platform
 import time
 from dataclasses import asdict, dataclass
+from pathlib import Path
 
 import numpy as np
 from threadpoolctl import threadpool_limits
 
 from sweepctl import __version__
+from sweepctl.errors import SweepctlError
 from sweepctl.kernel import NetworkModel, StripState
 
-__all__ = ["BenchRow", "bench_widths", "machine_info", "zgemm_gflops"]
+__all__ = [
+    "BenchRow",
+    "bench_widths",
+    "calibration_path",
+    "cost_model",
+    "machine_info",
+    "zgemm_gflops",
+]
 
 
 @dataclass(frozen=True)
@@ -108,3 +119,60 @@ def machine_info() -> dict:
         "sweepctl": __version__,
         "time": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
     }
+
+
+def calibration_path() -> Path:
+    """Where ``sweepctl`` keeps this machine's calibration (XDG cache directory)."""
+    base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+    return Path(base) / "sweepctl" / f"calibration-{platform.node() or 'host'}.json"
+
+
+def calibration_payload(rows: list[BenchRow], gemm: float | None = None) -> dict:
+    """The JSON document ``sweepctl bench --json`` writes and cost models read."""
+    return {
+        "kind": "sweepctl-kernel-calibration",
+        "machine": machine_info(),
+        "zgemm_gflops": gemm,
+        "widths": [r.as_dict() for r in rows],
+    }
+
+
+def cost_model(widths: list[int], path: str | Path | None = None, measure: bool = True):
+    """A :class:`~sweepctl.plan.CostModel` and where it came from.
+
+    ``path`` (a ``sweepctl bench --json`` file) wins; then this machine's cached
+    calibration; otherwise a short measurement at ``widths`` (saved to the cache).
+    Returns ``(None, reason)`` when nothing is stored and ``measure`` is false.
+    """
+    from sweepctl.plan import CostModel
+
+    if path is not None:
+        p = Path(path)
+        try:
+            data = json.loads(p.read_text())
+            return CostModel(data["widths"]), f"calibration {p}"
+        except (OSError, ValueError, KeyError, TypeError) as exc:
+            raise SweepctlError(
+                f"--calibration: cannot use {str(p)!r} ({exc}); write one with "
+                "sweepctl bench --json FILE"
+            ) from None
+    cached = calibration_path()
+    if cached.exists():
+        try:
+            data = json.loads(cached.read_text())
+            return CostModel(data["widths"]), f"calibration {cached}"
+        except (OSError, ValueError, KeyError, TypeError):
+            pass
+    if not measure:
+        return None, "no calibration stored"
+    ws = sorted({int(w) for w in widths} | {4})
+    rows = bench_widths(ws, strips=8, seconds=0.15)
+    payload = calibration_payload(rows)
+    try:
+        cached.parent.mkdir(parents=True, exist_ok=True)
+        tmp = cached.with_suffix(".tmp")
+        tmp.write_text(json.dumps(payload, indent=2) + "\n")
+        os.replace(tmp, cached)
+    except OSError:
+        pass
+    return CostModel(payload["widths"]), f"measured now at N = {', '.join(map(str, ws))}"

@@ -12,6 +12,7 @@ from rich.console import Console
 from rich.table import Table
 
 from sweepctl import __version__
+from sweepctl.errors import SweepctlError
 
 app = typer.Typer(
     help="Seeded, resumable Lyapunov-exponent campaigns for network models.",
@@ -24,7 +25,7 @@ err_console = Console(stderr=True)
 _DEBUG = {"on": False}
 
 
-class UserError(Exception):
+class UserError(SweepctlError):
     """A mistake in the user's input: printed as one line, exit code 2."""
 
 
@@ -77,7 +78,7 @@ def bench(
     ] = None,
 ) -> None:
     """Measure kernel throughput per width on this machine (one BLAS thread)."""
-    from sweepctl.bench import bench_widths, machine_info, zgemm_gflops
+    from sweepctl.bench import bench_widths, calibration_payload, zgemm_gflops
 
     ws = _parse_widths(widths)
     with console.status("compiling the kernel and measuring…"):
@@ -97,17 +98,367 @@ def bench(
     console.print(table)
     console.print(f"complex matrix multiply (zgemm 512, one thread): {gemm:.1f} GFLOP/s")
     if json_out is not None:
-        payload = {
-            "kind": "sweepctl-kernel-calibration",
-            "machine": machine_info(),
-            "zgemm_gflops": gemm,
-            "widths": [r.as_dict() for r in rows],
-        }
+        payload = calibration_payload(rows, gemm)
         try:
             json_out.write_text(json.dumps(payload, indent=2) + "\n")
         except OSError as exc:
             raise UserError(f"--json: cannot write {str(json_out)!r}: {exc.strerror}") from None
         console.print(f"wrote {json_out}")
+
+
+# ----------------------------------------------------------------------------- campaigns
+
+StoreArg = Annotated[Path, typer.Argument(help="Campaign store directory.")]
+RecipeArg = Annotated[Path, typer.Argument(help="Recipe file (TOML).")]
+CalibrationOpt = Annotated[
+    Path | None,
+    typer.Option("--calibration", help="Kernel calibration from `sweepctl bench --json`."),
+]
+
+
+def _hours(h: float | None) -> str:
+    if h is None or h != h:
+        return "?"
+    if h < 10 / 3600:
+        return f"{h * 3600:.1f} s"
+    if h < 1 / 60:
+        return f"{h * 3600:.0f} s"
+    if h < 1:
+        return f"{h * 60:.1f} min"
+    return f"{h:,.1f} h"
+
+
+def _duration(seconds: float | None) -> str:
+    if seconds is None:
+        return "?"
+    s = round(seconds)
+    if s < 60:
+        return f"{s}s"
+    if s < 3600:
+        return f"{s // 60}m{s % 60:02d}s"
+    return f"{s // 3600}h{(s % 3600) // 60:02d}m"
+
+
+@app.command()
+def plan(
+    recipe: RecipeArg,
+    json_out: Annotated[bool, typer.Option("--json", help="Print the plan as JSON.")] = False,
+    calibration: CalibrationOpt = None,
+) -> None:
+    """Points, replicas, seeds and estimated cost of a recipe (nothing is run)."""
+    from sweepctl.bench import cost_model
+    from sweepctl.plan import make_plan
+
+    rec = load_recipe_or_fail(recipe)
+    with console.status("calibrating the kernel…") if not json_out else _null():
+        cost, origin = cost_model(list(rec.widths), calibration)
+    pl = make_plan(rec, cost, origin)
+    if json_out:
+        print(json.dumps(pl, indent=2))
+        return
+    t = Table(title=f"plan for {rec.name!r}: {pl['points']} points")
+    for c in (
+        "N",
+        "points",
+        "replica layers",
+        "warm-up",
+        "strips",
+        "replicas/point",
+        "cap",
+        "CPU/replica",
+        "CPU total",
+    ):
+        t.add_column(c, justify="right")
+    for g in pl["widths"]:
+        t.add_row(
+            str(g["N"]),
+            str(g["points"]),
+            f"{g['replica_layers']:,}",
+            str(g["warmup"]),
+            str(g["strips"]),
+            str(g["expected_replicas_per_point"]),
+            str(g["max_replicas"]),
+            _hours(g["cpu_hours_per_replica"]),
+            _hours(g["cpu_hours"]),
+        )
+    console.print(t)
+    console.print(
+        f"total: {pl['replicas']:,} replicas, about {_hours(pl['cpu_hours'])} of CPU "
+        f"({pl['cost_source']}); precision target {rec.target:g} relative on Γ"
+    )
+    console.print(f"seeds: {pl['seed_scheme']}")
+    console.print(f"suggested: {pl['suggestion']}")
+
+
+class _null:
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *a):
+        return False
+
+
+def load_recipe_or_fail(path: Path):
+    from sweepctl.recipe import load_recipe
+
+    return load_recipe(path)
+
+
+class _RunDisplay:
+    """Progress bar with ETA on a terminal; a plain line every 30 s otherwise."""
+
+    def __init__(self) -> None:
+        self.tty = console.is_terminal
+        self.progress = None
+        self.task = None
+        self.last_line = 0.0
+        self.msg: dict = {}
+
+    def __call__(self, msg: dict) -> None:
+        import time
+
+        kind = msg["kind"]
+        if kind == "start":
+            console.print(
+                f"{msg['points']} points, {msg['todo']} to do, "
+                f"{msg['stored_rows']} replicas already stored"
+            )
+            if self.tty and msg["todo"]:
+                from rich.progress import BarColumn, Progress, TextColumn
+
+                self.progress = Progress(
+                    TextColumn("replicas"),
+                    BarColumn(),
+                    TextColumn("{task.completed}/{task.total}"),
+                    TextColumn("ETA {task.fields[eta]}"),
+                    console=console,
+                    transient=False,
+                )
+                self.progress.start()
+                self.task = self.progress.add_task("run", total=1, eta="?")
+        elif kind == "progress":
+            self.msg = msg
+            if self.progress is not None:
+                self.progress.update(
+                    self.task,
+                    completed=msg["done"],
+                    total=max(1, msg["total"]),
+                    eta=_duration(msg["eta"]),
+                )
+            elif time.monotonic() - self.last_line >= 30.0:
+                self.last_line = time.monotonic()
+                self._plain()
+        elif kind == "log":
+            (self.progress.console if self.progress else console).print(msg["message"])
+
+    def _plain(self) -> None:
+        import time
+
+        m = self.msg
+        if not m:
+            return
+        pct = 100.0 * m["done"] / max(1, m["total"])
+        console.print(
+            f"{time.strftime('%H:%M:%S')} replicas {m['done']}/{m['total']} ({pct:.0f}%), "
+            f"computed this run {m['computed']}, ETA {_duration(m['eta'])}",
+            highlight=False,
+        )
+
+    def close(self) -> None:
+        if self.progress is not None:
+            self.progress.stop()
+        elif self.msg:
+            self._plain()
+
+
+@app.command()
+def run(
+    recipe: RecipeArg,
+    store: Annotated[Path, typer.Option("--store", help="Campaign store directory.")],
+    workers: Annotated[
+        int | None,
+        typer.Option("--workers", min=1, help="Local worker processes (default: cores)."),
+    ] = None,
+    scheduler: Annotated[
+        str | None, typer.Option("--scheduler", help="Address of a running Dask scheduler.")
+    ] = None,
+    scheduler_file: Annotated[
+        Path | None, typer.Option("--scheduler-file", help="Dask scheduler file.")
+    ] = None,
+    calibration: CalibrationOpt = None,
+) -> None:
+    """Run or continue a campaign until every point reaches its precision (or cap)."""
+    from sweepctl.bench import cost_model
+    from sweepctl.execute import RunOptions, run_campaign
+    from sweepctl.store import Store
+
+    if scheduler and scheduler_file:
+        raise UserError("--scheduler and --scheduler-file: give one of them, not both")
+    rec = load_recipe_or_fail(recipe)
+    needs = rec.replica_layers is None or rec.max_cpu_hours is not None
+    cost, _ = cost_model(list(rec.widths), calibration, measure=needs)
+    opts = RunOptions(
+        workers=workers,
+        scheduler=scheduler,
+        scheduler_file=str(scheduler_file) if scheduler_file else None,
+    )
+    display = _RunDisplay()
+    try:
+        res = run_campaign(rec, Store(store), str(recipe), opts, cost, display)
+    finally:
+        display.close()
+    console.print(
+        f"{res.done} of {res.points} points done ({res.capped} stopped at the cap), "
+        f"{res.failed} failed; {res.computed} replicas computed in {_duration(res.seconds)}"
+    )
+    if res.interrupted:
+        console.print(
+            f"interrupted — run the same command again to continue: "
+            f"sweepctl run {recipe} --store {store}"
+        )
+        raise typer.Exit(130)
+    if res.failed:
+        raise typer.Exit(1)
+
+
+@app.command()
+def merge(
+    store: StoreArg,
+    out: Annotated[
+        Path | None, typer.Option("--out", help="Output directory (default STORE/merged).")
+    ] = None,
+) -> None:
+    """Write the per-point table (Parquet and CSV)."""
+    from sweepctl.store import Store, atomic_write_bytes
+    from sweepctl.summary import merge_table
+
+    st = Store(store)
+    df = merge_table(st)
+    target = out or st.merged_dir
+    target.mkdir(parents=True, exist_ok=True)
+    import io
+
+    buf = io.BytesIO()
+    df.to_parquet(buf, index=False)
+    atomic_write_bytes(target / "points.parquet", buf.getvalue())
+    atomic_write_bytes(target / "points.csv", df.to_csv(index=False).encode())
+    reached = int(df["reached_target"].sum()) if len(df) else 0
+    console.print(
+        f"{len(df)} points ({reached} at target) -> {target / 'points.parquet'}, "
+        f"{target / 'points.csv'}"
+    )
+
+
+@app.command()
+def status(
+    store: StoreArg,
+    json_out: Annotated[bool, typer.Option("--json", help="Print JSON.")] = False,
+    calibration: CalibrationOpt = None,
+) -> None:
+    """Per-point progress, precision reached and remaining cost."""
+    from sweepctl.bench import cost_model
+    from sweepctl.store import Store
+    from sweepctl.summary import status_rows
+
+    st = Store(store)
+    st.require()
+    cost, _ = cost_model([4], calibration, measure=False)
+    rows, totals = status_rows(st, cost)
+    if json_out:
+        print(json.dumps({"totals": totals, "points": rows}, indent=2, default=str))
+        return
+    t = Table(title=f"{totals['campaign']}: {totals['done']}/{totals['points']} points done")
+    for c in ("N", "x", "p_block", "p_open", "ε", "replicas", "Γ", "rel. err", "state", "left"):
+        t.add_column(c, justify="right")
+    shown = rows if len(rows) <= 200 else [r for r in rows if r["state"] != "done"][:200]
+    for r in shown:
+        t.add_row(
+            str(r["N"]),
+            f"{r['x']:g}",
+            f"{r['p_block']:g}",
+            f"{r['p_open']:g}",
+            f"{r['epsilon']:g}",
+            f"{r['replicas']}/{r['planned']}",
+            "—" if r["Gamma"] != r["Gamma"] else f"{r['Gamma']:.4f}",
+            "—" if r["rel_err"] == float("inf") else f"{r['rel_err']:.2%}",
+            r["state"],
+            _hours(r["remaining_cpu_hours"]),
+        )
+    console.print(t)
+    if len(shown) < len(rows):
+        console.print(f"({len(rows) - len(shown)} more points not shown; use --json)")
+    console.print(
+        f"done {totals['done']}, capped {totals['capped']}, running {totals['running']}, "
+        f"pending {totals['pending']}; {totals['replicas']} replicas stored; remaining "
+        f"{_hours(totals['remaining_cpu_hours'])} CPU for the current rounds"
+    )
+
+
+@app.command()
+def audit(
+    store: StoreArg,
+    point: Annotated[
+        str | None, typer.Option("--point", help="Seed trace of e.g. N=8,x=0.1,p=0.1.")
+    ] = None,
+    recompute_n: Annotated[
+        int, typer.Option("--recompute", min=0, help="Recompute K random replicas bitwise.")
+    ] = 0,
+    seed: Annotated[
+        int | None, typer.Option("--seed", help="Seed for choosing the replicas.")
+    ] = None,
+) -> None:
+    """Check integrity, trace seeds, recompute replicas; exit 1 on any problem."""
+    from sweepctl.audit import audit_store, parse_selector, recompute, seed_trace
+    from sweepctl.store import Store
+
+    st = Store(store)
+    st.require()
+    sel = parse_selector(point) if point else None
+    rep = audit_store(st)
+    console.print(
+        f"integrity: {rep.files} files, {rep.rows} replica rows, {len(rep.problems)} problem(s)"
+    )
+    for p in rep.problems:
+        console.print(f"  problem: {p}", highlight=False)
+    for w in rep.warnings:
+        console.print(f"  warning: {w}", highlight=False)
+    if sel is not None:
+        trace = seed_trace(st, sel)
+        t = Table(title=f"seed trace for {point}: {len(trace)} replicas")
+        for c in ("point", "r", "spawn key", "layers", "Γ", "worker", "host", "job", "code"):
+            t.add_column(c)
+        for r in trace:
+            t.add_row(
+                r["point_key"],
+                str(r["replica"]),
+                ",".join(map(str, r["spawn_key"])),
+                str(r["layers"]),
+                f"{r['Gamma']:.6f}",
+                str(r["worker"]),
+                str(r["host"]),
+                str(r["batch_job_id"] or "—"),
+                f"{r['sweepctl_version']} {str(r['git_commit'])[:12]}",
+            )
+        console.print(t)
+        if trace:
+            console.print(
+                f"entropy {trace[0]['entropy']}; seed of replica r = "
+                "SeedSequence(entropy, spawn_key), PCG64"
+            )
+    if recompute_n:
+        with console.status(f"recomputing {recompute_n} replicas…"):
+            rep.recomputed = recompute(st, recompute_n, seed, sel)
+        for r in rep.recomputed:
+            mark = "identical" if r["identical"] else "MISMATCH"
+            console.print(
+                f"  {mark}: {r['point_key']} replica {r['replica']} "
+                f"(stored Γ {r['stored_Gamma']:.12g}, recomputed {r['recomputed_Gamma']:.12g})",
+                highlight=False,
+            )
+    if not rep.ok:
+        console.print("audit FAILED")
+        raise typer.Exit(1)
+    console.print("audit passed")
 
 
 def main() -> None:
@@ -119,7 +470,7 @@ def main() -> None:
     """
     try:
         app()
-    except UserError as exc:
+    except SweepctlError as exc:
         if _DEBUG["on"]:
             raise
         _fail(str(exc))

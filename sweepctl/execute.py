@@ -33,9 +33,16 @@ from sweepctl.plan import (
     relative_error,
 )
 from sweepctl.recipe import Point, Recipe
-from sweepctl.store import CONVENTIONS, Store, code_version
+from sweepctl.store import CONVENTIONS, Store, StoreError, code_version
 
-__all__ = ["Connection", "PointProgress", "RunOptions", "RunResult", "open_campaign", "run_campaign"]
+__all__ = [
+    "Connection",
+    "PointProgress",
+    "RunOptions",
+    "RunResult",
+    "open_campaign",
+    "run_campaign",
+]
 
 log = logging.getLogger("sweepctl")
 _MAX_ATTEMPTS = 20  # resubmissions of a replica whose workers keep dying
@@ -68,7 +75,9 @@ def now_iso() -> str:
     return datetime.now(UTC).isoformat(timespec="milliseconds")
 
 
-def open_campaign(recipe: Recipe, store: Store, source: str, cost: CostModel | None) -> tuple[dict, Frozen]:
+def open_campaign(
+    recipe: Recipe, store: Store, source: str, cost: CostModel | None
+) -> tuple[dict, Frozen]:
     """Create the store or check the recipe against it; returns (campaign, frozen).
 
     Must be called with the store's lock held. Nothing is written if the recipe is
@@ -97,7 +106,9 @@ def open_campaign(recipe: Recipe, store: Store, source: str, cost: CostModel | N
     hist = campaign["recipe_history"]
     digest = recipe.digest()
     if not hist or hist[-1]["digest"] != digest:
-        hist.append({"digest": digest, "time": now_iso(), "source": source, "recipe": recipe.canonical()})
+        hist.append(
+            {"digest": digest, "time": now_iso(), "source": source, "recipe": recipe.canonical()}
+        )
     if store.exists():
         store.write_campaign(campaign)
     else:
@@ -125,7 +136,9 @@ class PointProgress:
     def decide(self) -> None:
         """Advance the round structure as far as complete prefixes allow."""
         while not self.finished and self.prefix_complete():
-            nt = next_target([self.done[r] for r in range(self.wanted)], self.target, self.max_replicas)
+            nt = next_target(
+                [self.done[r] for r in range(self.wanted)], self.target, self.max_replicas
+            )
             if nt <= self.wanted:
                 self.finished = True
             else:
@@ -177,9 +190,13 @@ class Connection:
         import dask
         from distributed import Client, LocalCluster
 
-        dask.config.set({"distributed.scheduler.allowed-failures": 10,
-                         "distributed.worker.daemon": False,
-                         "distributed.admin.tick.limit": "60s"})
+        dask.config.set(
+            {
+                "distributed.scheduler.allowed-failures": 10,
+                "distributed.worker.daemon": False,
+                "distributed.admin.tick.limit": "60s",
+            }
+        )
         self.cluster = None
         if options.scheduler_file:
             self.client = Client(scheduler_file=options.scheduler_file, timeout="60s")
@@ -248,6 +265,13 @@ def run_campaign(
     """
     t0 = time.perf_counter()
     say = report or (lambda _m: None)
+    if not store.exists():
+        if store.root.exists() and any(store.root.iterdir()):
+            raise StoreError(
+                f"{store.root}: directory exists and is not a sweepctl store; "
+                "choose an empty or new directory"
+            )
+        store.root.mkdir(parents=True, exist_ok=True)
     with store.locked():
         removed = store.cleanup()
         campaign, frozen = open_campaign(recipe, store, source, cost)
@@ -255,9 +279,16 @@ def run_campaign(
         rows = store.read_replicas(columns=["point_key", "replica", "gamma_strips"])
         progress = build_progress(recipe, frozen, rows)
         stored_before = rows.num_rows
-        events: list[dict] = [{"time": now_iso(), "event": "run-start", "pid": os.getpid(),
-                               "recipe": recipe.digest(), "stored_rows": stored_before,
-                               "removed_temporaries": [str(p) for p in removed]}]
+        events: list[dict] = [
+            {
+                "time": now_iso(),
+                "event": "run-start",
+                "pid": os.getpid(),
+                "recipe": recipe.digest(),
+                "stored_rows": stored_before,
+                "removed_temporaries": [str(p) for p in removed],
+            }
+        ]
         store.append_events(events)
         events = []
         lock = threading.Lock()
@@ -291,8 +322,14 @@ def run_campaign(
             last_flush = time.perf_counter()
 
         todo = [pp for pp in progress.values() if not pp.finished]
-        say({"kind": "start", "points": len(progress), "todo": len(todo),
-             "stored_rows": stored_before})
+        say(
+            {
+                "kind": "start",
+                "points": len(progress),
+                "todo": len(todo),
+                "stored_rows": stored_before,
+            }
+        )
         if not todo:
             store.append_events([{"time": now_iso(), "event": "run-end", "computed": 0}])
             return _result(progress, 0, False, t0)
@@ -309,8 +346,9 @@ def run_campaign(
             conn = Connection(options)
             conn.client.subscribe_topic("sweepctl", on_worker_event)
             pids = conn.worker_pids()
-            store.append_events([{"time": now_iso(), "event": "cluster", "kind": conn.kind,
-                                  "workers": pids}])
+            store.append_events(
+                [{"time": now_iso(), "event": "cluster", "kind": conn.kind, "workers": pids}]
+            )
             say({"kind": "log", "message": f"connected: {conn.kind}"})
             from distributed import as_completed
 
@@ -324,8 +362,12 @@ def run_campaign(
                     if r in pp.done or k in inflight:
                         continue
                     spec = ReplicaSpec(
-                        point=pp.point, replica=r, entropy=frozen.entropy, layers=pp.layers,
-                        warmup=pp.warmup, strips=frozen.strips,
+                        point=pp.point,
+                        replica=r,
+                        entropy=frozen.entropy,
+                        layers=pp.layers,
+                        warmup=pp.warmup,
+                        strips=frozen.strips,
                         checkpoint=str(store.checkpoint_path(pp.point.short, r)),
                         checkpoint_seconds=recipe.checkpoint_seconds,
                     )
@@ -338,16 +380,30 @@ def run_campaign(
                     inflight[k] = fut
                     futures.add(fut)
                     with lock:
-                        events.append({"time": now_iso(), "event": "submitted",
-                                       "point": pp.point.key, "replica": r, "key": key})
+                        events.append(
+                            {
+                                "time": now_iso(),
+                                "event": "submitted",
+                                "point": pp.point.key,
+                                "replica": r,
+                                "key": key,
+                            }
+                        )
 
             for pp in todo:
                 submit(pp)
             total_wanted = lambda: sum(pp.wanted for pp in progress.values())  # noqa: E731
             done_count = lambda: sum(len(pp.done) for pp in progress.values())  # noqa: E731
-            say({"kind": "progress", "done": done_count(), "total": total_wanted(),
-                 "computed": 0, "eta": None})
-            rate_model: list[float] = []
+            say(
+                {
+                    "kind": "progress",
+                    "done": done_count(),
+                    "total": total_wanted(),
+                    "computed": 0,
+                    "eta": None,
+                }
+            )
+            observed: dict[int, list[float]] = {}
             for fut in futures:
                 pp, spec = fut.sweepctl
                 k = (pp.point.key, spec.replica)
@@ -358,16 +414,34 @@ def run_campaign(
                     a = attempts.get(k, 0) + 1
                     attempts[k] = a
                     with lock:
-                        events.append({"time": now_iso(), "event": "failed", "point": pp.point.key,
-                                       "replica": spec.replica, "error": f"{name}: {exc}",
-                                       "attempt": a})
-                    if name in ("KilledWorker", "CommClosedError", "FutureCancelledError") and a < _MAX_ATTEMPTS:
+                        events.append(
+                            {
+                                "time": now_iso(),
+                                "event": "failed",
+                                "point": pp.point.key,
+                                "replica": spec.replica,
+                                "error": f"{name}: {exc}",
+                                "attempt": a,
+                            }
+                        )
+                    if (
+                        name in ("KilledWorker", "CommClosedError", "FutureCancelledError")
+                        and a < _MAX_ATTEMPTS
+                    ):
                         submit(pp)  # worker loss: continue elsewhere from the checkpoint
                     else:
                         pp.failed = True
                         pp.finished = True
                         failed_points += 1
-                        say({"kind": "log", "message": f"replica {spec.replica} of {pp.point.label()} failed: {name}: {exc}"})
+                        say(
+                            {
+                                "kind": "log",
+                                "message": (
+                                    f"replica {spec.replica} of {pp.point.label()} failed: "
+                                    f"{name}: {exc}"
+                                ),
+                            }
+                        )
                     continue
                 out = fut.result()
                 fut.release()
@@ -379,28 +453,50 @@ def run_campaign(
                 pp.done[spec.replica] = np.asarray(out.gamma_strips)
                 computed += 1
                 with lock:
-                    events.append({"time": now_iso(), "event": "finished", "point": pp.point.key,
-                                   "replica": spec.replica, "worker": out.worker,
-                                   "wall_seconds": out.wall_seconds})
-                if cost is not None:
-                    model = cost.replica_seconds(pp.point.width, spec.layers, spec.warmup, spec.strips)
-                    rate_model.append(out.wall_seconds / max(model, 1e-9))
+                    events.append(
+                        {
+                            "time": now_iso(),
+                            "event": "finished",
+                            "point": pp.point.key,
+                            "replica": spec.replica,
+                            "worker": out.worker,
+                            "wall_seconds": out.wall_seconds,
+                        }
+                    )
+                per = out.wall_seconds / max(1, (spec.layers + spec.warmup) * spec.strips)
+                observed.setdefault(pp.point.width, []).append(per)
                 before = pp.wanted
                 pp.decide()
                 if pp.wanted > before:
                     submit(pp)
-                if len(pending_rows) >= options.flush_rows or time.perf_counter() - last_flush >= options.flush_seconds:
+                if (
+                    len(pending_rows) >= options.flush_rows
+                    or time.perf_counter() - last_flush >= options.flush_seconds
+                ):
                     flush()
-                say({"kind": "progress", "done": done_count(), "total": total_wanted(),
-                     "computed": computed,
-                     "eta": _eta(progress, frozen, cost, rate_model, conn.n_workers())})
+                say(
+                    {
+                        "kind": "progress",
+                        "done": done_count(),
+                        "total": total_wanted(),
+                        "computed": computed,
+                        "eta": _eta(progress, frozen, cost, observed, conn.n_workers()),
+                    }
+                )
         except KeyboardInterrupt:
             interrupted = True
             say({"kind": "log", "message": "interrupted: saving what has arrived"})
         finally:
             flush()
-            store.append_events([{"time": now_iso(), "event": "interrupted" if interrupted else "run-end",
-                                  "computed": computed}])
+            store.append_events(
+                [
+                    {
+                        "time": now_iso(),
+                        "event": "interrupted" if interrupted else "run-end",
+                        "computed": computed,
+                    }
+                ]
+            )
             if conn is not None:
                 conn.close()
             with contextlib.suppress(ValueError, TypeError):
@@ -408,17 +504,28 @@ def run_campaign(
         return _result(progress, computed, interrupted, t0)
 
 
-def _eta(progress, frozen, cost, rate_model, workers) -> float | None:
-    if cost is None or not rate_model:
+def _eta(progress, frozen, cost, observed: dict[int, list[float]], workers) -> float | None:
+    """Seconds left for the current rounds: observed seconds per strip-layer per width
+    (the calibration, or another width scaled as N², where none is observed yet)."""
+    if not observed and cost is None:
         return None
-    factor = float(np.median(rate_model))
+    mean_obs = {n: float(np.mean(v)) for n, v in observed.items() if v}
+
+    def spl(n: int) -> float:
+        if n in mean_obs:
+            return mean_obs[n]
+        if cost is not None:
+            return cost.seconds_per_strip_layer(n)
+        m, v = min(mean_obs.items(), key=lambda kv: abs(kv[0] - n))
+        return v * (n / m) ** 2
+
     secs = 0.0
     for pp in progress.values():
         if pp.finished:
             continue
         missing = pp.wanted - len(pp.done)
-        secs += missing * cost.replica_seconds(pp.point.width, pp.layers, pp.warmup, frozen.strips)
-    return secs * factor / max(1, workers)
+        secs += missing * (pp.layers + pp.warmup) * frozen.strips * spl(pp.point.width)
+    return secs / max(1, workers)
 
 
 def _result(progress, computed, interrupted, t0) -> RunResult:

@@ -27,11 +27,13 @@ __all__ = [
     "CostModel",
     "Frozen",
     "ReplicaSpec",
+    "check_compatible",
     "expected_replicas",
     "freeze",
+    "make_plan",
     "next_target",
+    "relative_error",
     "replica_seed",
-    "check_compatible",
 ]
 
 #: relative error of Γ ≈ √(c·N/(Γ·L)) for L measured strip-layers (c ≈ 0.6–0.8 near
@@ -109,7 +111,9 @@ class CostModel:
     """
 
     def __init__(self, rows: list[dict]) -> None:
-        pts = sorted({int(r["width"]): 1.0 / float(r["strip_layers_per_second"]) for r in rows}.items())
+        pts = sorted(
+            {int(r["width"]): 1.0 / float(r["strip_layers_per_second"]) for r in rows}.items()
+        )
         if not pts:
             raise ValueError("empty calibration")
         self.widths = np.array([p[0] for p in pts], dtype=float)
@@ -137,7 +141,9 @@ def freeze(recipe: Recipe, cost: CostModel | None, previous: Frozen | None = Non
     """Frozen settings for ``recipe``: new widths are added, existing ones kept."""
     if previous is None:
         entropy = recipe.entropy if recipe.entropy is not None else secrets.randbits(128)
-        fz = Frozen(entropy=entropy, strips=recipe.strips, warmup=recipe.warmup, replica_rule=_rule(recipe))
+        fz = Frozen(
+            entropy=entropy, strips=recipe.strips, warmup=recipe.warmup, replica_rule=_rule(recipe)
+        )
     else:
         fz = Frozen.from_json(previous.to_json())
     for n in recipe.widths:
@@ -167,20 +173,28 @@ def check_compatible(recipe: Recipe, frozen: Frozen, source: str) -> None:
     """Refuse recipe changes that would alter results already in the store."""
     if recipe.entropy is not None and recipe.entropy != frozen.entropy:
         raise RecipeError(
-            "campaign.entropy", f"{recipe.entropy:#x}",
+            "campaign.entropy",
+            f"{recipe.entropy:#x}",
             f"the store was created with entropy {frozen.entropy:#x}; changing it would "
-            "change every seed — remove the line or use a new store", source,
+            "change every seed — remove the line or use a new store",
+            source,
         )
     old = frozen.replica_rule
     new = _rule(recipe)
-    names = {"layers": "replica.layers", "duration_seconds": "replica.duration_seconds",
-             "warmup": "replica.warmup", "strips": "replica.strips"}
+    names = {
+        "layers": "replica.layers",
+        "duration_seconds": "replica.duration_seconds",
+        "warmup": "replica.warmup",
+        "strips": "replica.strips",
+    }
     for k, field_name in names.items():
         if old.get(k) != new[k]:
             raise RecipeError(
-                field_name, new[k],
+                field_name,
+                new[k],
                 f"the store was made with {field_name} = {old.get(k)!r}; changing it would "
-                "change existing results — restore it or use a new store", source,
+                "change existing results — restore it or use a new store",
+                source,
             )
 
 
@@ -206,7 +220,10 @@ class ReplicaSpec:
         """Identity of the computation (not of where it checkpoints)."""
         import hashlib
 
-        ident = f"{self.point.key}|r={self.replica}|e={self.entropy:#x}|L={self.layers}|w={self.warmup}|S={self.strips}"
+        ident = (
+            f"{self.point.key}|r={self.replica}|e={self.entropy:#x}"
+            f"|L={self.layers}|w={self.warmup}|S={self.strips}"
+        )
         return hashlib.sha256(ident.encode()).hexdigest()
 
 
@@ -240,3 +257,84 @@ def expected_replicas(width: int, target: float, layers: int, strips: int, cap: 
     """A priori replica count from the error model (plans and estimates only)."""
     strip_layers = ERROR_CONSTANT * width / (GAMMA_GUESS * target**2)
     return int(min(cap, max(1, math.ceil(strip_layers / (layers * strips)))))
+
+
+def make_plan(recipe: Recipe, cost: CostModel, cost_source: str) -> dict:
+    """The plan of a recipe as plain data (what ``sweepctl plan`` shows)."""
+    fz = freeze(recipe, cost, None)
+    points = recipe.points()
+    by_width: dict[int, int] = {}
+    for p in points:
+        by_width[p.width] = by_width.get(p.width, 0) + 1
+    groups = []
+    total_reps = 0
+    total_hours = 0.0
+    per_point = []
+    for n in sorted(by_width):
+        layers, warm, cap = fz.replica_layers[n], fz.warmup_for(n), fz.max_replicas(n)
+        reps = max(
+            min(recipe.initial, cap),
+            expected_replicas(n, recipe.target, layers, recipe.strips, cap),
+        )
+        hours = cost.replica_seconds(n, layers, warm, recipe.strips) / 3600.0
+        groups.append(
+            {
+                "N": n,
+                "points": by_width[n],
+                "replica_layers": layers,
+                "warmup": warm,
+                "strips": recipe.strips,
+                "expected_replicas_per_point": reps,
+                "max_replicas": cap,
+                "cpu_hours_per_replica": hours,
+                "cpu_hours": hours * reps * by_width[n],
+                "expected_layers_per_point": reps * layers,
+            }
+        )
+        total_reps += reps * by_width[n]
+        total_hours += hours * reps * by_width[n]
+    for p in points:
+        g = next(g for g in groups if g["N"] == p.width)
+        per_point.append(
+            {
+                "point": p.key,
+                "N": p.width,
+                "x": p.x,
+                "p_block": p.p_block,
+                "p_open": p.p_open,
+                "epsilon": p.epsilon,
+                "expected_replicas": g["expected_replicas_per_point"],
+                "cpu_hours": g["cpu_hours_per_replica"] * g["expected_replicas_per_point"],
+            }
+        )
+    n_max = max(by_width)
+    spl = cost.seconds_per_strip_layer(n_max) * recipe.strips
+    ten_min = max(64, int(600.0 / spl) - fz.warmup_for(n_max))
+    rep_secs = cost.replica_seconds(
+        n_max, fz.replica_layers[n_max], fz.warmup_for(n_max), recipe.strips
+    )
+    wall_min = math.ceil((6 * rep_secs + 600) / 900.0) * 15
+    return {
+        "campaign": recipe.name,
+        "points": len(points),
+        "replicas": total_reps,
+        "cpu_hours": total_hours,
+        "cost_source": cost_source,
+        "target": recipe.target,
+        "seed_scheme": (
+            "replica r of point P uses SeedSequence(entropy, spawn_key=(*key_ints(P), r)), "
+            "key_ints = four 32-bit words of SHA-256(P's canonical key); entropy "
+            + (
+                "fixed in the recipe"
+                if recipe.entropy is not None
+                else "drawn once when the store is created"
+            )
+        ),
+        "suggestion": (
+            f"replica.layers ≈ {ten_min:,} for ~10-minute replicas at N = {n_max}; "
+            f"batch walltime ≥ {wall_min // 60}:{wall_min % 60:02d} (6 replicas of the largest "
+            f"width per job, plus start-up); replica.checkpoint_seconds = 180"
+        ),
+        "widths": groups,
+        "per_point": per_point,
+    }

@@ -36,6 +36,8 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from sweepctl.errors import SweepctlError
+
 __all__ = ["Point", "Recipe", "RecipeError", "canonical_float", "load_recipe", "parse_recipe"]
 
 _SECTIONS = {
@@ -54,7 +56,7 @@ _MAX_WIDTH = 4096
 _MAX_POINTS = 1_000_000
 
 
-class RecipeError(ValueError):
+class RecipeError(SweepctlError, ValueError):
     """A recipe problem: ``field``, ``value`` and a one-line ``fix``."""
 
     def __init__(self, field: str, value: Any, fix: str, source: str = "recipe") -> None:

@@ -35,6 +35,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from sweepctl import __version__
+from sweepctl.errors import SweepctlError
 
 __all__ = [
     "REPLICA_SCHEMA",
@@ -87,7 +88,7 @@ REPLICA_SCHEMA = pa.schema(
 )
 
 
-class StoreError(RuntimeError):
+class StoreError(SweepctlError, RuntimeError):
     """A store that cannot be used as asked (message says why and what to do)."""
 
 
@@ -103,12 +104,17 @@ def code_version() -> dict[str, str]:
     try:
         out = subprocess.run(
             ["git", "-C", str(here), "rev-parse", "HEAD"],
-            capture_output=True, text=True, timeout=5, check=True,
+            capture_output=True,
+            text=True,
+            timeout=5,
+            check=True,
         )
         commit = out.stdout.strip()
         dirty = subprocess.run(
             ["git", "-C", str(here), "status", "--porcelain", "--untracked-files=no", "--", "."],
-            capture_output=True, text=True, timeout=5,
+            capture_output=True,
+            text=True,
+            timeout=5,
         )
         if dirty.stdout.strip():
             commit += "-dirty"
@@ -116,7 +122,11 @@ def code_version() -> dict[str, str]:
         pass
     import numpy
 
-    return {"sweepctl_version": __version__, "git_commit": commit, "numpy_version": numpy.__version__}
+    return {
+        "sweepctl_version": __version__,
+        "git_commit": commit,
+        "numpy_version": numpy.__version__,
+    }
 
 
 def _fsync_dir(path: Path) -> None:
@@ -175,7 +185,8 @@ class Store:
 
     def create(self, campaign: dict) -> None:
         """Create the directory layout and the first campaign.json."""
-        if self.root.exists() and any(self.root.iterdir()) and not self.exists():
+        foreign = [p for p in self.root.iterdir() if p.name != "lock"] if self.root.exists() else []
+        if foreign and not self.exists():
             raise StoreError(
                 f"{self.root}: directory exists and is not a sweepctl store; "
                 "choose an empty or new directory"
@@ -288,7 +299,11 @@ class Store:
         """All replica rows (pinned schema), in file order."""
         parts = self.part_files()
         if not parts:
-            return REPLICA_SCHEMA.empty_table() if columns is None else REPLICA_SCHEMA.empty_table().select(columns)
+            return (
+                REPLICA_SCHEMA.empty_table()
+                if columns is None
+                else REPLICA_SCHEMA.empty_table().select(columns)
+            )
         tables = [pq.read_table(p, columns=columns, schema=REPLICA_SCHEMA) for p in parts]
         return pa.concat_tables(tables).replace_schema_metadata(None)
 

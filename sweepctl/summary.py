@@ -15,8 +15,17 @@ from sweepctl.store import Store
 __all__ = ["MERGED_COLUMNS", "merge_table", "status_rows", "store_recipe"]
 
 MERGED_COLUMNS = [
-    "p_block", "p_open", "epsilon", "N", "x", "Gamma", "Gamma_err", "replicas", "layers",
-    "cpu_hours", "reached_target",
+    "p_block",
+    "p_open",
+    "epsilon",
+    "N",
+    "x",
+    "Gamma",
+    "Gamma_err",
+    "replicas",
+    "layers",
+    "cpu_hours",
+    "reached_target",
 ]
 _SORT = ["p_block", "p_open", "epsilon", "N", "x"]
 
@@ -33,8 +42,18 @@ def merge_table(store: Store) -> pd.DataFrame:
     """One row per point with Γ, its standard error over all strips of all replicas."""
     campaign, _, _ = store_recipe(store)
     target = float(campaign["target"])
-    cols = ["point_key", "p_block", "p_open", "epsilon", "width", "x", "replica",
-            "gamma_strips", "layers", "cpu_seconds"]
+    cols = [
+        "point_key",
+        "p_block",
+        "p_open",
+        "epsilon",
+        "width",
+        "x",
+        "replica",
+        "gamma_strips",
+        "layers",
+        "cpu_seconds",
+    ]
     t = store.read_replicas(columns=cols)
     if t.num_rows == 0:
         return pd.DataFrame(columns=MERGED_COLUMNS)
@@ -46,13 +65,21 @@ def merge_table(store: Store) -> pd.DataFrame:
         mean = float(np.mean(gam))
         err = float(np.std(gam, ddof=1) / math.sqrt(gam.size)) if gam.size > 1 else math.nan
         first = g.iloc[0]
-        out.append({
-            "p_block": float(first.p_block), "p_open": float(first.p_open),
-            "epsilon": float(first.epsilon), "N": int(first.width), "x": float(first.x),
-            "Gamma": mean, "Gamma_err": err, "replicas": int(len(g)),
-            "layers": int(g["layers"].sum()), "cpu_hours": float(g["cpu_seconds"].sum()) / 3600.0,
-            "reached_target": bool(err / abs(mean) <= target) if mean else False,
-        })
+        out.append(
+            {
+                "p_block": float(first.p_block),
+                "p_open": float(first.p_open),
+                "epsilon": float(first.epsilon),
+                "N": int(first.width),
+                "x": float(first.x),
+                "Gamma": mean,
+                "Gamma_err": err,
+                "replicas": len(g),
+                "layers": int(g["layers"].sum()),
+                "cpu_hours": float(g["cpu_seconds"].sum()) / 3600.0,
+                "reached_target": bool(err / abs(mean) <= target) if mean else False,
+            }
+        )
     res = pd.DataFrame(out, columns=MERGED_COLUMNS)
     return res.sort_values(_SORT, kind="stable").reset_index(drop=True)
 
@@ -71,20 +98,36 @@ def status_rows(store: Store, cost: CostModel | None) -> tuple[list[dict], dict]
         missing = max(0, pp.wanted - len(pp.done))
         secs = (
             missing * cost.replica_seconds(pp.point.width, pp.layers, pp.warmup, frozen.strips)
-            if cost is not None else math.nan
+            if cost is not None
+            else math.nan
         )
         remaining += 0.0 if math.isnan(secs) else secs
-        state = "done" if pp.finished and pp.reached else ("capped" if pp.capped else (
-            "running" if pp.done else "pending"))
-        out.append({
-            "point": pp.point.key, "N": pp.point.width, "x": pp.point.x,
-            "p_block": pp.point.p_block, "p_open": pp.point.p_open, "epsilon": pp.point.epsilon,
-            "replicas": len(pp.done), "planned": pp.wanted, "max_replicas": pp.max_replicas,
-            "Gamma": mean, "rel_err": rel, "target": recipe.target, "state": state,
-            "remaining_cpu_hours": secs / 3600.0 if not math.isnan(secs) else None,
-        })
+        state = (
+            "done"
+            if pp.finished and pp.reached
+            else ("capped" if pp.capped else ("running" if pp.done else "pending"))
+        )
+        out.append(
+            {
+                "point": pp.point.key,
+                "N": pp.point.width,
+                "x": pp.point.x,
+                "p_block": pp.point.p_block,
+                "p_open": pp.point.p_open,
+                "epsilon": pp.point.epsilon,
+                "replicas": len(pp.done),
+                "planned": pp.wanted,
+                "max_replicas": pp.max_replicas,
+                "Gamma": mean,
+                "rel_err": rel,
+                "target": recipe.target,
+                "state": state,
+                "remaining_cpu_hours": secs / 3600.0 if not math.isnan(secs) else None,
+            }
+        )
     totals = {
-        "campaign": campaign["name"], "points": len(out),
+        "campaign": campaign["name"],
+        "points": len(out),
         "done": sum(r["state"] == "done" for r in out),
         "capped": sum(r["state"] == "capped" for r in out),
         "running": sum(r["state"] == "running" for r in out),

@@ -148,9 +148,15 @@ def compute_replica(spec: ReplicaSpec, *, use_checkpoint: bool = True) -> Replic
     step = max(16, min(total, 2048 // max(1, spec.point.width // 8)))
     while state.layers_done < total:
         state.advance(min(step, total - state.layers_done))
-        if ck is not None and time.perf_counter() - last_ck >= spec.checkpoint_seconds and state.layers_done < total:
+        if (
+            ck is not None
+            and time.perf_counter() - last_ck >= spec.checkpoint_seconds
+            and state.layers_done < total
+        ):
             _write_checkpoint(
-                ck, spec, state,
+                ck,
+                spec,
+                state,
                 {
                     "cpu_seconds": prior_cpu + time.process_time() - t_cpu0,
                     "wall_seconds": prior_wall + time.perf_counter() - t_wall0,
@@ -193,8 +199,14 @@ def _log_event(kind: str, spec: ReplicaSpec, **extra) -> None:
         w = get_worker()
         w.log_event(
             "sweepctl",
-            {"event": kind, "point": spec.point.key, "replica": spec.replica,
-             "worker": w.address, "host": socket.gethostname(), **extra},
+            {
+                "event": kind,
+                "point": spec.point.key,
+                "replica": spec.replica,
+                "worker": w.address,
+                "host": socket.gethostname(),
+                **extra,
+            },
         )
 
 
