@@ -193,7 +193,6 @@ class Connection:
         dask.config.set(
             {
                 "distributed.scheduler.allowed-failures": 10,
-                "distributed.worker.daemon": False,
                 "distributed.admin.tick.limit": "60s",
             }
         )
@@ -221,9 +220,10 @@ class Connection:
             self.client = Client(self.cluster)
             self.kind = f"local cluster, {n} worker processes"
 
-    def worker_pids(self) -> dict[str, int]:
+    def worker_pids(self) -> dict[str, list[int]]:
+        """``{address: [pid, parent pid]}`` of every worker (for the events log)."""
         with contextlib.suppress(Exception):
-            return self.client.run(os.getpid)
+            return self.client.run(lambda: [os.getpid(), os.getppid()])
         return {}
 
     def n_workers(self) -> int:

@@ -61,12 +61,13 @@ class RecipeError(SweepctlError, ValueError):
 
     def __init__(self, field: str, value: Any, fix: str, source: str = "recipe") -> None:
         self.field, self.value, self.fix, self.source = field, value, fix, source
-        super().__init__(f"{source}: {field} = {_show(value)}: {fix}")
+        shown = _show(value, 200) if field == "(TOML)" else _show(value)
+        super().__init__(f"{source}: {field} = {shown}: {fix}")
 
 
-def _show(value: Any) -> str:
+def _show(value: Any, limit: int = 60) -> str:
     text = repr(value)
-    return text if len(text) <= 60 else text[:57] + "..."
+    return text if len(text) <= limit else text[: limit - 3] + "..."
 
 
 def canonical_float(v: float) -> float:

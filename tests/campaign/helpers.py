@@ -1,0 +1,131 @@
+"""Shared helpers for campaign tests: recipes, real CLI processes, store snapshots."""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pandas as pd
+
+BASE = {
+    "campaign": {"name": "test-campaign", "entropy": "0x1234_5678_9abc_def0_1234_5678_9abc_def0"},
+    "axes": {
+        "widths": [2, 3],
+        "couplings": [-0.2, 0.0, 0.2],
+        "disorder": [{"p": 0.0}],
+        "epsilon": [1e-6],
+    },
+    "precision": {"target": 0.03, "max_layers": 40_000},
+    "replica": {"layers": 4000, "warmup": 32, "strips": 4, "initial": 2, "checkpoint_seconds": 60},
+}
+
+
+def _toml_value(v) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, str):
+        return v if v.startswith("0x") else json.dumps(v)
+    if isinstance(v, dict):
+        return "{ " + ", ".join(f"{k} = {_toml_value(x)}" for k, x in v.items()) + " }"
+    if isinstance(v, list):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    return repr(v)
+
+
+def recipe_text(overrides: dict | None = None) -> str:
+    """TOML for BASE with ``{"section": {"key": value}}`` overrides (None deletes)."""
+    data = json.loads(json.dumps(BASE))
+    for sec, body in (overrides or {}).items():
+        data.setdefault(sec, {})
+        for k, v in body.items():
+            if v is None:
+                data[sec].pop(k, None)
+            else:
+                data[sec][k] = v
+    lines = []
+    for sec, body in data.items():
+        lines.append(f"[{sec}]")
+        lines += [f"{k} = {_toml_value(v)}" for k, v in body.items()]
+        lines.append("")
+    return "\n".join(lines)
+
+
+def write_recipe(path: Path, overrides: dict | None = None) -> Path:
+    path.write_text(recipe_text(overrides))
+    return path
+
+
+def cli(*args: str, env: dict | None = None, timeout: float = 600) -> subprocess.CompletedProcess:
+    """Run the real ``sweepctl`` command in a subprocess."""
+    return subprocess.run(
+        [sys.executable, "-m", "sweepctl", *map(str, args)],
+        capture_output=True, text=True, timeout=timeout, env={**os.environ, **(env or {})},
+    )
+
+
+def start_cli(*args: str, env: dict | None = None, log: Path | None = None) -> subprocess.Popen:
+    out = open(log, "w") if log else subprocess.DEVNULL  # noqa: SIM115
+    return subprocess.Popen(
+        [sys.executable, "-m", "sweepctl", *map(str, args)],
+        stdout=out, stderr=subprocess.STDOUT, env={**os.environ, **(env or {})},
+    )
+
+
+def events(store: Path) -> list[dict]:
+    f = store / "events.jsonl"
+    if not f.exists():
+        return []
+    out = []
+    for line in f.read_text().splitlines():
+        with contextlib.suppress(ValueError):
+            out.append(json.loads(line))
+    return out
+
+
+def wait_until(pred, timeout: float, what: str, poll: float = 0.1):
+    t0 = time.monotonic()
+    while time.monotonic() - t0 < timeout:
+        v = pred()
+        if v:
+            return v
+        time.sleep(poll)
+    raise AssertionError(f"timed out after {timeout:.0f} s waiting for {what}")
+
+
+def worker_pids(store: Path) -> list[int]:
+    """Worker process ids the driver(s) recorded (own pids, not their parents)."""
+    pids = []
+    for e in events(store):
+        if e.get("event") == "cluster":
+            pids += [int(v[0]) for v in e["workers"].values()]
+    return pids
+
+
+def kill_pids(pids) -> None:
+    for pid in pids:
+        with contextlib.suppress(ProcessLookupError, PermissionError):
+            os.kill(pid, signal.SIGKILL)
+
+
+def merged(store: Path, *, drop_timing: bool = True) -> pd.DataFrame:
+    """``sweepctl merge`` through the CLI, read back; cpu_hours measures the machine."""
+    proc = cli("merge", store)
+    assert proc.returncode == 0, proc.stderr
+    df = pd.read_parquet(store / "merged" / "points.parquet")
+    return df.drop(columns=["cpu_hours"]) if drop_timing else df
+
+
+def snapshot(root: Path) -> dict[str, str]:
+    """SHA-256 of every file below ``root`` (relative path → digest)."""
+    out = {}
+    for p in sorted(root.rglob("*")):
+        if p.is_file():
+            out[str(p.relative_to(root))] = hashlib.sha256(p.read_bytes()).hexdigest()
+    return out

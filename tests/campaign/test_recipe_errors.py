@@ -1,0 +1,125 @@
+"""Malformed recipes: one clear line naming field, value and fix; no traceback; store untouched."""
+
+from __future__ import annotations
+
+import re
+import shutil
+
+import pytest
+
+from tests.campaign.helpers import cli, recipe_text, snapshot, write_recipe
+
+BAD = [
+    # (id, overrides or raw text, field expected in the message)
+    ("unknown-section", "raw:[extra]\nfoo = 1\n", "extra"),
+    ("unknown-key", {"axes": {"width": [4]}}, "axes.width"),
+    ("widths-wrong-type", {"axes": {"widths": "4"}}, "axes.widths"),
+    ("widths-empty", {"axes": {"widths": []}}, "axes.widths"),
+    ("width-zero", {"axes": {"widths": [0]}}, "axes.widths[0]"),
+    ("width-not-integer", {"axes": {"widths": [2.5]}}, "axes.widths[0]"),
+    ("width-duplicate", {"axes": {"widths": [2, 2]}}, "axes.widths"),
+    ("couplings-empty", {"axes": {"couplings": []}}, "axes.couplings"),
+    ("couplings-range-reversed", {"axes": {"couplings": {"start": 0.2, "stop": -0.2, "num": 3}}},
+     "axes.couplings.stop"),
+    ("couplings-range-incomplete", {"axes": {"couplings": {"start": 0.0, "stop": 0.2}}},
+     "axes.couplings"),
+    ("couplings-duplicate", {"axes": {"couplings": [0.1, 0.1]}}, "axes.couplings"),
+    ("coupling-not-number", {"axes": {"couplings": ["zero"]}}, "axes.couplings[0]"),
+    ("p-above-one", {"axes": {"disorder": [{"p": 1.5}]}}, "axes.disorder[0].p"),
+    ("p-block-negative", {"axes": {"disorder": [{"p_block": -0.1, "p_open": 0.1}]}},
+     "axes.disorder[0].p_block"),
+    ("p-sum-above-one", {"axes": {"disorder": [{"p_block": 0.6, "p_open": 0.6}]}},
+     "axes.disorder[0]"),
+    ("p-and-p-block", {"axes": {"disorder": [{"p": 0.1, "p_block": 0.1}]}}, "axes.disorder[0]"),
+    ("disorder-duplicate", {"axes": {"disorder": [{"p": 0.1}, {"p_block": 0.1, "p_open": 0.1}]}},
+     "axes.disorder"),
+    ("epsilon-zero", {"axes": {"epsilon": [0.0]}}, "axes.epsilon[0]"),
+    ("epsilon-too-large", {"axes": {"epsilon": [0.5]}}, "axes.epsilon[0]"),
+    ("target-zero", {"precision": {"target": 0.0}}, "precision.target"),
+    ("target-negative", {"precision": {"target": -0.01}}, "precision.target"),
+    ("target-missing", {"precision": {"target": None}}, "precision.target"),
+    ("cap-below-replica", {"precision": {"max_layers": 100}}, "precision.max_layers"),
+    ("strips-one", {"replica": {"strips": 1}}, "replica.strips"),
+    ("layers-zero", {"replica": {"layers": 0}}, "replica.layers"),
+    ("layers-and-duration", {"replica": {"duration_seconds": 60}}, "replica.duration_seconds"),
+    ("warmup-negative", {"replica": {"warmup": -5}}, "replica.warmup"),
+    ("name-missing", {"campaign": {"name": None}}, "campaign.name"),
+    ("entropy-not-integer", {"campaign": {"entropy": "\"xyz\""}}, "campaign.entropy"),
+    ("unreadable-toml", "raw:[axes\nwidths = [4", "(TOML)"),
+    ("not-utf8", "bytes", "(file)"),
+    # changes that would alter results already stored
+    ("changed-replica-layers", {"replica": {"layers": 5000}}, "replica.layers"),
+    ("changed-strips", {"replica": {"strips": 6}}, "replica.strips"),
+    ("changed-warmup", {"replica": {"warmup": 40}}, "replica.warmup"),
+    ("changed-entropy", {"campaign": {"entropy": "0x99"}}, "campaign.entropy"),
+]
+
+
+@pytest.fixture(scope="module")
+def small_store(tmp_path_factory):
+    d = tmp_path_factory.mktemp("small")
+    recipe = write_recipe(d / "ok.toml", {"axes": {"widths": [2], "couplings": [0.0]}})
+    store = d / "store"
+    proc = cli("run", recipe, "--store", store, "--workers", "1")
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    return store
+
+
+def test_at_least_twenty_distinct_cases():
+    assert len({case[0] for case in BAD}) == len(BAD) >= 20
+
+
+@pytest.mark.parametrize(("name", "bad", "field"), BAD, ids=[b[0] for b in BAD])
+def test_malformed_recipe(name, bad, field, small_store, tmp_path):
+    store = tmp_path / "store"
+    shutil.copytree(small_store, store)
+    before = snapshot(store)
+    path = tmp_path / f"{name}.toml"
+    if bad == "bytes":
+        path.write_bytes(b"[campaign]\nname = \"\xff\xfe\"\n")
+    elif isinstance(bad, str):
+        path.write_text(recipe_text() + "\n" + bad[4:] if name == "unknown-section" else bad[4:])
+    else:
+        write_recipe(path, bad)
+    proc = cli("run", path, "--store", store)
+    assert proc.returncode != 0
+    assert "Traceback" not in proc.stderr + proc.stdout
+    lines = [ln for ln in proc.stderr.strip().splitlines() if ln.strip()]
+    assert len(lines) == 1, proc.stderr
+    line = lines[0]
+    assert field in line, line
+    # "<file>: <field> = <value>: <fix>" — the field, the value and the way out
+    assert re.search(r"error: .+: .+ = .+: .+", line), line
+    assert snapshot(store) == before  # nothing stored was touched
+
+
+def test_missing_recipe_file(tmp_path):
+    proc = cli("run", tmp_path / "nope.toml", "--store", tmp_path / "s")
+    assert proc.returncode == 2 and "no such file" in proc.stderr
+    assert "Traceback" not in proc.stderr
+    assert not (tmp_path / "s").exists()
+
+
+def test_store_in_foreign_directory_refused(tmp_path):
+    recipe = write_recipe(tmp_path / "ok.toml")
+    foreign = tmp_path / "foreign"
+    foreign.mkdir()
+    (foreign / "thesis.tex").write_text("precious")
+    proc = cli("run", recipe, "--store", foreign)
+    assert proc.returncode == 2 and "not a sweepctl store" in proc.stderr
+    assert [p.name for p in foreign.iterdir()] == ["thesis.tex"]
+
+
+def test_second_driver_refused(small_store, tmp_path):
+    import json
+    import os
+    import socket
+
+    store = tmp_path / "store"
+    shutil.copytree(small_store, store)
+    # this test process is alive: its lock must be respected
+    (store / "lock").write_text(json.dumps({"pid": os.getpid(), "host": socket.gethostname()}))
+    recipe = write_recipe(tmp_path / "ok.toml", {"axes": {"widths": [2], "couplings": [0.0]}})
+    proc = cli("run", recipe, "--store", store)
+    assert proc.returncode == 2
+    assert "in use by the driver" in proc.stderr and "Traceback" not in proc.stderr
