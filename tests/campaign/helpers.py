@@ -71,11 +71,13 @@ def cli(*args: str, env: dict | None = None, timeout: float = 600) -> subprocess
 
 
 def start_cli(*args: str, env: dict | None = None, log: Path | None = None) -> subprocess.Popen:
-    out = open(log, "w") if log else subprocess.DEVNULL  # noqa: SIM115
-    return subprocess.Popen(
-        [sys.executable, "-m", "sweepctl", *map(str, args)],
-        stdout=out, stderr=subprocess.STDOUT, env={**os.environ, **(env or {})},
-    )
+    """Start the real ``sweepctl`` in the background (output to ``log``)."""
+    cmd = [sys.executable, "-m", "sweepctl", *map(str, args)]
+    full_env = {**os.environ, **(env or {})}
+    if log is None:
+        return subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.STDOUT, env=full_env)
+    with open(log, "w") as out:  # the child keeps its own descriptor
+        return subprocess.Popen(cmd, stdout=out, stderr=subprocess.STDOUT, env=full_env)
 
 
 def events(store: Path) -> list[dict]:
