@@ -155,14 +155,14 @@ def freeze(recipe: Recipe, cost: CostModel | None, previous: Frozen | None = Non
         else:
             assert cost is not None and recipe.replica_seconds is not None
             per_layer = cost.seconds_per_strip_layer(n) * recipe.strips
-            layers = max(64, int(recipe.replica_seconds / per_layer) - warm)
+            layers = max(64, round(recipe.replica_seconds / per_layer) - warm)
         fz.replica_layers[n] = int(layers)
         if recipe.max_layers is not None:
             cap = recipe.max_layers
         elif recipe.max_cpu_hours is not None:
             assert cost is not None
             per_layer = cost.seconds_per_strip_layer(n) * recipe.strips
-            cap = int(recipe.max_cpu_hours * 3600.0 / per_layer)
+            cap = round(recipe.max_cpu_hours * 3600.0 / per_layer)
         else:
             cap = DEFAULT_CAP_REPLICAS * layers
         fz.max_layers[n] = max(int(cap), int(layers))

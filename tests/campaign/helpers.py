@@ -66,7 +66,10 @@ def cli(*args: str, env: dict | None = None, timeout: float = 600) -> subprocess
     """Run the real ``sweepctl`` command in a subprocess."""
     return subprocess.run(
         [sys.executable, "-m", "sweepctl", *map(str, args)],
-        capture_output=True, text=True, timeout=timeout, env={**os.environ, **(env or {})},
+        capture_output=True,
+        text=True,
+        timeout=timeout,
+        env={**os.environ, **(env or {})},
     )
 
 
@@ -75,7 +78,9 @@ def start_cli(*args: str, env: dict | None = None, log: Path | None = None) -> s
     cmd = [sys.executable, "-m", "sweepctl", *map(str, args)]
     full_env = {**os.environ, **(env or {})}
     if log is None:
-        return subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.STDOUT, env=full_env)
+        return subprocess.Popen(
+            cmd, stdout=subprocess.DEVNULL, stderr=subprocess.STDOUT, env=full_env
+        )
     with open(log, "w") as out:  # the child keeps its own descriptor
         return subprocess.Popen(cmd, stdout=out, stderr=subprocess.STDOUT, env=full_env)
 

@@ -12,8 +12,19 @@ import pytest
 from sweepctl.store import REPLICA_SCHEMA
 from tests.campaign.helpers import cli, events, merged, snapshot, write_recipe
 
-MERGED_COLUMNS = ["p_block", "p_open", "epsilon", "N", "x", "Gamma", "Gamma_err", "replicas",
-                  "layers", "cpu_hours", "reached_target"]
+MERGED_COLUMNS = [
+    "p_block",
+    "p_open",
+    "epsilon",
+    "N",
+    "x",
+    "Gamma",
+    "Gamma_err",
+    "replicas",
+    "layers",
+    "cpu_hours",
+    "reached_target",
+]
 
 
 def test_run_merge_status_audit(reference_store):
@@ -70,7 +81,9 @@ def test_one_worker_gives_the_same_table(reference_store, tmp_path):
     recipe = write_recipe(tmp_path / "recipe.toml")
     proc = cli("run", recipe, "--store", tmp_path / "one", "--workers", "1")
     assert proc.returncode == 0, proc.stderr
-    pd.testing.assert_frame_equal(merged(tmp_path / "one"), merged(reference_store), check_exact=True)
+    pd.testing.assert_frame_equal(
+        merged(tmp_path / "one"), merged(reference_store), check_exact=True
+    )
 
 
 def test_rerun_of_a_finished_campaign_computes_nothing(reference_store, tmp_path):

@@ -111,8 +111,15 @@ def test_driver_killed_while_writing(fault_reference, tmp_path, launched):
     store = tmp_path / "store"
     stores.append(store)
     # The driver SIGKILLs itself after writing a batch's temporary, before os.replace.
-    proc = cli("run", recipe, "--store", store, "--workers", "2",
-               env={"SWEEPCTL_FAULT": "kill-while-writing"})
+    proc = cli(
+        "run",
+        recipe,
+        "--store",
+        store,
+        "--workers",
+        "2",
+        env={"SWEEPCTL_FAULT": "kill-while-writing"},
+    )
     assert proc.returncode == -signal.SIGKILL
     kill_pids(worker_pids(store))
     assert list((store / "replicas").glob(".*.tmp-*")), "a torn temporary should be left"
@@ -147,9 +154,16 @@ def test_checkpointed_replica_resumes_bit_identically(tmp_path, launched):
     row = pq.read_table(sorted((store / "replicas").glob("part-*.parquet"))[0]).to_pylist()[0]
     assert row["resumed_at_layer"] > 0  # it did continue from the checkpoint
     assert not list((store / "checkpoints").rglob("*.ckpt"))  # removed once stored
-    spec = ReplicaSpec(point=Point(0.0, 0.0, 1e-6, 8, 0.1), replica=0,
-                       entropy=int(row["entropy"], 16), layers=400_000, warmup=32, strips=4,
-                       checkpoint="", checkpoint_seconds=1e9)
+    spec = ReplicaSpec(
+        point=Point(0.0, 0.0, 1e-6, 8, 0.1),
+        replica=0,
+        entropy=int(row["entropy"], 16),
+        layers=400_000,
+        warmup=32,
+        strips=4,
+        checkpoint="",
+        checkpoint_seconds=1e9,
+    )
     fresh = compute_replica(spec, use_checkpoint=False)
     assert np.asarray(fresh.gamma_strips).tobytes() == np.asarray(row["gamma_strips"]).tobytes()
     assert np.asarray(fresh.exponents).tobytes() == np.asarray(row["exponents"]).tobytes()

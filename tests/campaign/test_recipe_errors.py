@@ -19,20 +19,35 @@ BAD = [
     ("width-not-integer", {"axes": {"widths": [2.5]}}, "axes.widths[0]"),
     ("width-duplicate", {"axes": {"widths": [2, 2]}}, "axes.widths"),
     ("couplings-empty", {"axes": {"couplings": []}}, "axes.couplings"),
-    ("couplings-range-reversed", {"axes": {"couplings": {"start": 0.2, "stop": -0.2, "num": 3}}},
-     "axes.couplings.stop"),
-    ("couplings-range-incomplete", {"axes": {"couplings": {"start": 0.0, "stop": 0.2}}},
-     "axes.couplings"),
+    (
+        "couplings-range-reversed",
+        {"axes": {"couplings": {"start": 0.2, "stop": -0.2, "num": 3}}},
+        "axes.couplings.stop",
+    ),
+    (
+        "couplings-range-incomplete",
+        {"axes": {"couplings": {"start": 0.0, "stop": 0.2}}},
+        "axes.couplings",
+    ),
     ("couplings-duplicate", {"axes": {"couplings": [0.1, 0.1]}}, "axes.couplings"),
     ("coupling-not-number", {"axes": {"couplings": ["zero"]}}, "axes.couplings[0]"),
     ("p-above-one", {"axes": {"disorder": [{"p": 1.5}]}}, "axes.disorder[0].p"),
-    ("p-block-negative", {"axes": {"disorder": [{"p_block": -0.1, "p_open": 0.1}]}},
-     "axes.disorder[0].p_block"),
-    ("p-sum-above-one", {"axes": {"disorder": [{"p_block": 0.6, "p_open": 0.6}]}},
-     "axes.disorder[0]"),
+    (
+        "p-block-negative",
+        {"axes": {"disorder": [{"p_block": -0.1, "p_open": 0.1}]}},
+        "axes.disorder[0].p_block",
+    ),
+    (
+        "p-sum-above-one",
+        {"axes": {"disorder": [{"p_block": 0.6, "p_open": 0.6}]}},
+        "axes.disorder[0]",
+    ),
     ("p-and-p-block", {"axes": {"disorder": [{"p": 0.1, "p_block": 0.1}]}}, "axes.disorder[0]"),
-    ("disorder-duplicate", {"axes": {"disorder": [{"p": 0.1}, {"p_block": 0.1, "p_open": 0.1}]}},
-     "axes.disorder"),
+    (
+        "disorder-duplicate",
+        {"axes": {"disorder": [{"p": 0.1}, {"p_block": 0.1, "p_open": 0.1}]}},
+        "axes.disorder",
+    ),
     ("epsilon-zero", {"axes": {"epsilon": [0.0]}}, "axes.epsilon[0]"),
     ("epsilon-too-large", {"axes": {"epsilon": [0.5]}}, "axes.epsilon[0]"),
     ("target-zero", {"precision": {"target": 0.0}}, "precision.target"),
@@ -44,7 +59,7 @@ BAD = [
     ("layers-and-duration", {"replica": {"duration_seconds": 60}}, "replica.duration_seconds"),
     ("warmup-negative", {"replica": {"warmup": -5}}, "replica.warmup"),
     ("name-missing", {"campaign": {"name": None}}, "campaign.name"),
-    ("entropy-not-integer", {"campaign": {"entropy": "\"xyz\""}}, "campaign.entropy"),
+    ("entropy-not-integer", {"campaign": {"entropy": '"xyz"'}}, "campaign.entropy"),
     ("unreadable-toml", "raw:[axes\nwidths = [4", "(TOML)"),
     ("not-utf8", "bytes", "(file)"),
     # changes that would alter results already stored
@@ -76,7 +91,7 @@ def test_malformed_recipe(name, bad, field, small_store, tmp_path):
     before = snapshot(store)
     path = tmp_path / f"{name}.toml"
     if bad == "bytes":
-        path.write_bytes(b"[campaign]\nname = \"\xff\xfe\"\n")
+        path.write_bytes(b'[campaign]\nname = "\xff\xfe"\n')
     elif isinstance(bad, str):
         path.write_text(recipe_text() + "\n" + bad[4:] if name == "unknown-section" else bad[4:])
     else:

@@ -1,0 +1,172 @@
+"""Audit catches tampering; Ctrl-C loses nothing; an existing Dask cluster is used."""
+
+from __future__ import annotations
+
+import shutil
+import signal
+import subprocess
+import sys
+
+import pandas as pd
+import pyarrow.parquet as pq
+
+from sweepctl.plan import CostModel, freeze
+from sweepctl.recipe import parse_recipe
+from tests.campaign.helpers import (
+    cli,
+    events,
+    kill_pids,
+    merged,
+    start_cli,
+    wait_until,
+    worker_pids,
+    write_recipe,
+)
+from tests.campaign.test_faults import FAULT
+
+
+def test_audit_detects_a_changed_number(reference_store, tmp_path):
+    store = tmp_path / "store"
+    shutil.copytree(reference_store, store)
+    part = sorted((store / "replicas").glob("part-*.parquet"))[0]
+    t = pq.read_table(part)
+    rows = t.to_pylist()
+    rows[0]["gamma_strips"] = [
+        g * (1 + 1e-15) if i == 0 else g for i, g in enumerate(rows[0]["gamma_strips"])
+    ]
+    import pyarrow as pa
+
+    pq.write_table(pa.Table.from_pylist(rows, schema=t.schema), part)
+    proc = cli("audit", store, "--recompute", "100")  # every replica
+    assert proc.returncode == 1
+    assert proc.stdout.count("MISMATCH") == 1 and "audit FAILED" in proc.stdout
+
+
+def test_audit_detects_a_duplicate_and_a_foreign_schema(reference_store, tmp_path):
+    store = tmp_path / "store"
+    shutil.copytree(reference_store, store)
+    part = sorted((store / "replicas").glob("part-*.parquet"))[0]
+    shutil.copy(part, part.with_name("part-zz-copy.parquet"))
+    proc = cli("audit", store)
+    assert proc.returncode == 1 and "duplicate" in proc.stdout
+    (store / "replicas" / "part-zz-copy.parquet").unlink()
+    import pyarrow as pa
+
+    pq.write_table(pa.table({"x": [1.0]}), store / "replicas" / "part-zz-foreign.parquet")
+    proc = cli("audit", store)
+    assert proc.returncode == 1 and "schema differs" in proc.stdout
+
+
+def test_ctrl_c_stops_cleanly_and_the_rerun_completes(tmp_path):
+    recipe = write_recipe(tmp_path / "recipe.toml", FAULT)
+    ref = tmp_path / "ref"
+    assert cli("run", recipe, "--store", ref, "--workers", "2").returncode == 0
+    store = tmp_path / "store"
+    drv = start_cli("run", recipe, "--store", store, "--workers", "2", log=tmp_path / "log")
+    try:
+        wait_until(
+            lambda: sum(e.get("event") == "finished" for e in events(store)) >= 3,
+            120,
+            "three finished replicas",
+        )
+        drv.send_signal(signal.SIGINT)
+        assert drv.wait(timeout=120) == 130
+    finally:
+        if drv.poll() is None:
+            drv.kill()
+        kill_pids(worker_pids(store))
+    log = (tmp_path / "log").read_text()
+    assert "interrupted" in log and "Traceback" not in log
+    assert events(store)[-1]["event"] == "interrupted"
+    n = events(store)[-1]["computed"]
+    stored = sum(pq.read_table(p).num_rows for p in (store / "replicas").glob("part-*.parquet"))
+    assert stored == n >= 3  # everything that arrived was written
+    assert not (store / "lock").exists()
+    assert cli("run", recipe, "--store", store, "--workers", "2").returncode == 0
+    pd.testing.assert_frame_equal(merged(store), merged(ref), check_exact=True)
+
+
+def test_existing_cluster_through_a_scheduler_file(reference_store, tmp_path):
+    sched_file = tmp_path / "scheduler.json"
+    sched = subprocess.Popen(
+        [
+            sys.executable,
+            "-m",
+            "distributed.cli.dask_scheduler",
+            "--host",
+            "127.0.0.1",
+            "--port",
+            "0",
+            "--no-dashboard",
+            "--scheduler-file",
+            str(sched_file),
+        ],
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
+    worker = None
+    try:
+        wait_until(sched_file.exists, 60, "the scheduler file")
+        worker = subprocess.Popen(
+            [
+                sys.executable,
+                "-m",
+                "distributed.cli.dask_worker",
+                "--scheduler-file",
+                str(sched_file),
+                "--nthreads",
+                "1",
+                "--nworkers",
+                "2",
+                "--host",
+                "127.0.0.1",
+                "--no-dashboard",
+            ],
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.DEVNULL,
+        )
+        recipe = write_recipe(tmp_path / "recipe.toml")
+        proc = cli("run", recipe, "--store", tmp_path / "store", "--scheduler-file", sched_file)
+        assert proc.returncode == 0, proc.stdout + proc.stderr
+        assert "scheduler-file" in proc.stdout
+        pd.testing.assert_frame_equal(
+            merged(tmp_path / "store"), merged(reference_store), check_exact=True
+        )
+    finally:
+        for p in (worker, sched):
+            if p is not None and p.poll() is None:
+                p.terminate()
+                try:
+                    p.wait(timeout=30)
+                except subprocess.TimeoutExpired:
+                    p.kill()
+
+
+def test_duration_is_frozen_into_layers_once():
+    data = {
+        "campaign": {"name": "d"},
+        "axes": {"widths": [4, 8], "couplings": [0.0]},
+        "precision": {"target": 0.01, "max_cpu_hours": 0.5},
+        "replica": {"duration_seconds": 10.0, "warmup": 40, "strips": 8},
+    }
+    rec = parse_recipe(data)
+    fast = CostModel(
+        [{"width": 4, "strip_layers_per_second": 8e5}, {"width": 8, "strip_layers_per_second": 4e5}]
+    )
+    fz = freeze(rec, fast)
+    # derived: layers = duration / (seconds per strip-layer × strips) − warm-up
+    assert fz.replica_layers == {4: round(10.0 / (8 / 8e5)) - 40, 8: round(10.0 / (8 / 4e5)) - 40}
+    assert fz.max_layers[4] == round(0.5 * 3600 * 8e5 / 8)
+    # a slower machine later, and a new width: existing widths keep their frozen layers
+    slow = CostModel(
+        [
+            {"width": 4, "strip_layers_per_second": 1e5},
+            {"width": 16, "strip_layers_per_second": 1e4},
+        ]
+    )
+    rec2 = parse_recipe({**data, "axes": {"widths": [4, 8, 16], "couplings": [0.0]}})
+    fz2 = freeze(rec2, slow, fz)
+    assert fz2.replica_layers[4] == fz.replica_layers[4]
+    assert fz2.replica_layers[8] == fz.replica_layers[8]
+    assert fz2.replica_layers[16] == round(10.0 / (8 / 1e4)) - 40
+    assert fz2.entropy == fz.entropy
