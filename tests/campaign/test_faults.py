@@ -106,7 +106,7 @@ def test_driver_killed_then_rerun(fault_reference, tmp_path, launched):
 
 
 def test_driver_killed_while_writing(fault_reference, tmp_path, launched):
-    procs, stores = launched
+    _procs, stores = launched
     recipe = write_recipe(tmp_path / "recipe.toml", FAULT)
     store = tmp_path / "store"
     stores.append(store)
