@@ -194,6 +194,9 @@ class Connection:
             {
                 "distributed.scheduler.allowed-failures": 10,
                 "distributed.admin.tick.limit": "60s",
+                # The workers' sampling profiler takes the GIL every 10 ms from a
+                # compute-bound task; sweepctl has no use for it.
+                "distributed.worker.profile.enabled": False,
             }
         )
         self.cluster = None
