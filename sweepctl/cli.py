@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import json
 import sys
 from pathlib import Path
@@ -286,25 +287,57 @@ def run(
         Path | None, typer.Option("--scheduler-file", help="Dask scheduler file.")
     ] = None,
     calibration: CalibrationOpt = None,
+    cluster: Annotated[
+        str | None, typer.Option("--cluster", help="Batch profile (or slurm/pbs/sge/lsf).")
+    ] = None,
+    profiles: Annotated[
+        Path | None, typer.Option("--profiles", help="Profile file (default: user config).")
+    ] = None,
+    walltime: Annotated[
+        str | None, typer.Option("--walltime", help="Job walltime HH:MM:SS.")
+    ] = None,
+    queue: Annotated[str | None, typer.Option("--queue", help="Partition / queue.")] = None,
+    min_jobs: Annotated[int | None, typer.Option("--min-jobs", min=0)] = None,
+    max_jobs: Annotated[int | None, typer.Option("--max-jobs", min=1)] = None,
 ) -> None:
     """Run or continue a campaign until every point reaches its precision (or cap)."""
     from sweepctl.bench import cost_model
     from sweepctl.execute import RunOptions, run_campaign
     from sweepctl.store import Store
 
-    if scheduler and scheduler_file:
-        raise UserError("--scheduler and --scheduler-file: give one of them, not both")
+    ways = (
+        ("--scheduler", scheduler),
+        ("--scheduler-file", scheduler_file),
+        ("--cluster", cluster),
+        ("--workers", workers),
+    )
+    chosen = [o for o, v in ways if v]
+    if len(chosen) > 1:
+        raise UserError(f"{' and '.join(chosen)}: give one way to get workers, not several")
     rec = load_recipe_or_fail(recipe)
-    needs = rec.replica_layers is None or rec.max_cpu_hours is not None
-    cost, _ = cost_model(list(rec.widths), calibration, measure=needs)
+    st = Store(store)
     opts = RunOptions(
         workers=workers,
         scheduler=scheduler,
         scheduler_file=str(scheduler_file) if scheduler_file else None,
     )
+    if cluster:
+        from sweepctl.cluster import load_profile, make_cluster
+
+        over = {"walltime": walltime, "queue": queue, "min_jobs": min_jobs, "max_jobs": max_jobs}
+        prof = load_profile(cluster, profiles, over)
+        opts.cluster_factory = lambda: make_cluster(prof, st.root)
+        opts.default_replica_seconds = prof.replica_seconds()
+    elif _wants_tls(scheduler, scheduler_file):
+        from sweepctl.cluster import make_security
+
+        st.root.mkdir(parents=True, exist_ok=True)
+        opts.security = make_security(st.root)
+    needs = rec.replica_layers is None or rec.max_cpu_hours is not None
+    cost, _ = cost_model(list(rec.widths), calibration, measure=needs)
     display = _RunDisplay()
     try:
-        res = run_campaign(rec, Store(store), str(recipe), opts, cost, display)
+        res = run_campaign(rec, st, str(recipe), opts, cost, display)
     finally:
         display.close()
     console.print(
@@ -319,6 +352,33 @@ def run(
         raise typer.Exit(130)
     if res.failed:
         raise typer.Exit(1)
+
+
+def _wants_tls(scheduler: str | None, scheduler_file: Path | None) -> bool:
+    if scheduler:
+        return scheduler.startswith("tls://")
+    if scheduler_file and scheduler_file.exists():
+        with contextlib.suppress(OSError, ValueError):
+            return str(json.loads(scheduler_file.read_text()).get("address", "")).startswith("tls")
+    return False
+
+
+cluster_app = typer.Typer(help="Batch-system profiles and job scripts.", no_args_is_help=True)
+app.add_typer(cluster_app, name="cluster")
+
+
+@cluster_app.command("script")
+def cluster_script(
+    profile: Annotated[str, typer.Argument(help="Profile name (or slurm/pbs/sge/lsf).")],
+    profiles: Annotated[Path | None, typer.Option("--profiles", help="Profile file.")] = None,
+    walltime: Annotated[str | None, typer.Option("--walltime")] = None,
+    queue: Annotated[str | None, typer.Option("--queue")] = None,
+) -> None:
+    """Print the job script a worker job of PROFILE would submit."""
+    from sweepctl.cluster import job_script, load_profile
+
+    p = load_profile(profile, profiles, {"walltime": walltime, "queue": queue})
+    print(job_script(p))
 
 
 @app.command()

@@ -58,6 +58,8 @@ class RunOptions:
     flush_seconds: float = 5.0
     flush_rows: int = 500
     cluster_factory: Callable[[], object] | None = None  # batch-system clusters
+    security: object | None = None  # distributed.Security for TLS clusters
+    default_replica_seconds: float | None = None  # from a batch profile's walltime
 
 
 @dataclass
@@ -76,20 +78,25 @@ def now_iso() -> str:
 
 
 def open_campaign(
-    recipe: Recipe, store: Store, source: str, cost: CostModel | None
+    recipe: Recipe,
+    store: Store,
+    source: str,
+    cost: CostModel | None,
+    default_seconds: float | None = None,
 ) -> tuple[dict, Frozen]:
     """Create the store or check the recipe against it; returns (campaign, frozen).
 
     Must be called with the store's lock held. Nothing is written if the recipe is
     refused.
     """
+    kw = {} if default_seconds is None else {"default_seconds": default_seconds}
     if store.exists():
         campaign = store.read_campaign()
         frozen = Frozen.from_json(campaign["frozen"])
         check_compatible(recipe, frozen, source)
-        frozen = freeze(recipe, cost, frozen)
+        frozen = freeze(recipe, cost, frozen, **kw)
     else:
-        frozen = freeze(recipe, cost, None)
+        frozen = freeze(recipe, cost, None, **kw)
         campaign = {
             "format": 1,
             "name": recipe.name,
@@ -197,19 +204,24 @@ class Connection:
                 # The workers' sampling profiler takes the GIL every 10 ms from a
                 # compute-bound task; sweepctl has no use for it.
                 "distributed.worker.profile.enabled": False,
+                # Likewise the workers' memory and system monitors (psutil, every 100 and
+                # 500 ms by default): measured 5-10 % of a compute-bound task here.
+                "distributed.worker.memory.monitor-interval": "2s",
+                "distributed.admin.system-monitor.interval": "5s",
             }
         )
         self.cluster = None
+        sec = {"security": options.security} if options.security is not None else {}
         if options.scheduler_file:
-            self.client = Client(scheduler_file=options.scheduler_file, timeout="60s")
+            self.client = Client(scheduler_file=options.scheduler_file, timeout="60s", **sec)
             self.kind = f"scheduler-file {options.scheduler_file}"
         elif options.scheduler:
-            self.client = Client(options.scheduler, timeout="60s")
+            self.client = Client(options.scheduler, timeout="60s", **sec)
             self.kind = f"scheduler {options.scheduler}"
         elif options.cluster_factory is not None:
             self.cluster = options.cluster_factory()
-            self.client = Client(self.cluster)
-            self.kind = type(self.cluster).__name__
+            self.client = Client(self.cluster, security=getattr(self.cluster, "security", None))
+            self.kind = f"{type(self.cluster).__name__} (TLS, adaptive)"
         else:
             n = options.workers or _cores()
             self.cluster = LocalCluster(
@@ -277,7 +289,9 @@ def run_campaign(
         store.root.mkdir(parents=True, exist_ok=True)
     with store.locked():
         removed = store.cleanup()
-        campaign, frozen = open_campaign(recipe, store, source, cost)
+        campaign, frozen = open_campaign(
+            recipe, store, source, cost, options.default_replica_seconds
+        )
         meta = {"name": campaign["name"], "entropy": campaign["frozen"]["entropy"]}
         rows = store.read_replicas(columns=["point_key", "replica", "gamma_strips"])
         progress = build_progress(recipe, frozen, rows)

@@ -137,8 +137,21 @@ class CostModel:
         return self.seconds_per_strip_layer(width) * strips * (layers + warmup)
 
 
-def freeze(recipe: Recipe, cost: CostModel | None, previous: Frozen | None = None) -> Frozen:
-    """Frozen settings for ``recipe``: new widths are added, existing ones kept."""
+#: Replica duration when the recipe gives neither layers nor a duration.
+DEFAULT_REPLICA_SECONDS = 300.0
+
+
+def freeze(
+    recipe: Recipe,
+    cost: CostModel | None,
+    previous: Frozen | None = None,
+    default_seconds: float = DEFAULT_REPLICA_SECONDS,
+) -> Frozen:
+    """Frozen settings for ``recipe``: new widths are added, existing ones kept.
+
+    ``default_seconds`` is the replica duration used when the recipe names none (a
+    batch profile passes a fraction of its walltime).
+    """
     if previous is None:
         entropy = recipe.entropy if recipe.entropy is not None else secrets.randbits(128)
         fz = Frozen(
@@ -153,14 +166,17 @@ def freeze(recipe: Recipe, cost: CostModel | None, previous: Frozen | None = Non
         if recipe.replica_layers is not None:
             layers = recipe.replica_layers
         else:
-            assert cost is not None and recipe.replica_seconds is not None
+            if cost is None:
+                raise ValueError("a replica duration needs a kernel calibration")
+            secs = recipe.replica_seconds or default_seconds
             per_layer = cost.seconds_per_strip_layer(n) * recipe.strips
-            layers = max(64, round(recipe.replica_seconds / per_layer) - warm)
+            layers = max(64, round(secs / per_layer) - warm)
         fz.replica_layers[n] = int(layers)
         if recipe.max_layers is not None:
             cap = recipe.max_layers
         elif recipe.max_cpu_hours is not None:
-            assert cost is not None
+            if cost is None:
+                raise ValueError("a CPU-hour cap needs a kernel calibration")
             per_layer = cost.seconds_per_strip_layer(n) * recipe.strips
             cap = round(recipe.max_cpu_hours * 3600.0 / per_layer)
         else:

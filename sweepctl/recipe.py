@@ -445,8 +445,8 @@ def parse_recipe(data: dict, source: str = "recipe") -> Recipe:
             raise RecipeError(
                 "replica.duration_seconds", r["duration_seconds"], "must be positive", src
             )
-    else:
-        rs = 300.0
+    # neither: the replica duration defaults at store creation (300 s, or a fraction of
+    # a batch profile's walltime)
     warm = r.get("warmup", "auto")
     if warm == "auto":
         warmup = None

@@ -1,0 +1,163 @@
+"""Campaigns on a real single-node Slurm through dask-jobqueue; all traffic on loopback."""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pandas as pd
+import pyarrow.parquet as pq
+import pytest
+
+from tests.campaign.helpers import cli, events, merged, start_cli, wait_until, write_recipe
+
+ROOT = Path(__file__).resolve().parents[2]
+PY_BIN = str(Path(sys.executable).parent)
+
+SLOW = {
+    "axes": {"widths": [2, 3, 4]},
+    "precision": {"target": 0.002, "max_layers": 2_000_000},
+    "replica": {"layers": 100_000, "checkpoint_seconds": 0.3},
+}
+
+
+def profile(tmp: Path, **extra) -> Path:
+    body = {
+        "system": '"slurm"', "queue": '"debug"', "cores": "2", "processes": "2",
+        "memory": '"2GB"', "walltime": '"00:10:00"', "lifetime_margin": '"1m"',
+        "min_jobs": "1", "max_jobs": "1", "interface": '"lo"', "scheduler_host": '"127.0.0.1"',
+        "prologue": f'["export PATH={PY_BIN}:$PATH", "cd {ROOT}"]',
+    }
+    body.update({k: v for k, v in extra.items()})
+    f = tmp / "clusters.toml"
+    f.write_text("[profiles.test]\n" + "\n".join(f"{k} = {v}" for k, v in body.items()) + "\n")
+    return f
+
+
+def jobs(name: str = "sweepctl-test") -> list[str]:
+    out = subprocess.run(["squeue", "-h", "-o", "%i %j %T"], capture_output=True, text=True)
+    return [ln.split()[0] for ln in out.stdout.splitlines() if name in ln]
+
+
+def cancel_all(name: str = "sweepctl") -> None:
+    out = subprocess.run(["squeue", "-h", "-o", "%i %j"], capture_output=True, text=True)
+    ids = [ln.split()[0] for ln in out.stdout.splitlines() if name in ln]
+    if ids:
+        subprocess.run(["scancel", *ids], capture_output=True)
+
+
+@pytest.fixture(autouse=True)
+def no_leftover_jobs():
+    yield
+    cancel_all()
+
+
+@pytest.fixture(scope="module")
+def slow_reference(tmp_path_factory):
+    d = tmp_path_factory.mktemp("slurm-ref")
+    recipe = write_recipe(d / "recipe.toml", SLOW)
+    assert cli("run", recipe, "--store", d / "store", "--workers", "2").returncode == 0
+    return merged(d / "store")
+
+
+def test_campaign_through_slurmcluster_matches_local(slow_reference, tmp_path):
+    recipe = write_recipe(tmp_path / "recipe.toml", SLOW)
+    proc = cli("run", recipe, "--store", tmp_path / "store", "--cluster", "test",
+               "--profiles", profile(tmp_path), timeout=900)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    assert "SLURMCluster" in proc.stdout
+    pd.testing.assert_frame_equal(merged(tmp_path / "store"), slow_reference, check_exact=True)
+    rows = pq.read_table(tmp_path / "store" / "replicas").to_pylist()
+    assert all(r["batch_job_id"] for r in rows)  # computed inside Slurm jobs
+    assert all(r["worker"].startswith("tls://") for r in rows)
+
+
+def test_worker_job_cancelled_mid_campaign(slow_reference, tmp_path):
+    recipe = write_recipe(tmp_path / "recipe.toml", SLOW)
+    store = tmp_path / "store"
+    drv = start_cli("run", recipe, "--store", store, "--cluster", "test", "--profiles",
+                    profile(tmp_path), log=tmp_path / "log")
+    try:
+        wait_until(lambda: sum(e.get("event") == "finished" for e in events(store)) >= 3, 300,
+                   "three finished replicas")
+        victims = jobs()
+        assert victims
+        subprocess.run(["scancel", *victims], check=True)
+        assert drv.wait(timeout=900) == 0, (tmp_path / "log").read_text()
+    finally:
+        if drv.poll() is None:
+            drv.kill()
+    pd.testing.assert_frame_equal(merged(store), slow_reference, check_exact=True)
+    ids = {r["batch_job_id"] for r in pq.read_table(store / "replicas").to_pylist()}
+    assert len(ids) >= 2  # a new job took over after the cancelled one
+
+
+def test_worker_job_hits_walltime_mid_replica(tmp_path):
+    over = {
+        "axes": {"widths": [8], "couplings": [0.1]},
+        "precision": {"target": 0.5, "max_layers": 10_000_000},
+        "replica": {"layers": 10_000_000, "initial": 1, "checkpoint_seconds": 5},
+    }
+    recipe = write_recipe(tmp_path / "recipe.toml", over)
+    store = tmp_path / "store"
+    # one-minute jobs and no early retirement: Slurm's TIMEOUT ends the worker mid-replica
+    prof = profile(tmp_path, walltime='"00:01:00"', lifetime_margin='"off"')
+    proc = cli("run", recipe, "--store", store, "--cluster", "test", "--profiles", prof,
+               timeout=1500)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    row = pq.read_table(store / "replicas").to_pylist()[0]
+    assert row["resumed_at_layer"] > 0
+    from sweepctl.plan import ReplicaSpec
+    from sweepctl.recipe import Point
+    from sweepctl.worker import compute_replica
+
+    spec = ReplicaSpec(point=Point(0.0, 0.0, 1e-6, 8, 0.1), replica=0,
+                       entropy=int(row["entropy"], 16), layers=10_000_000, warmup=32,
+                       strips=4, checkpoint="", checkpoint_seconds=1e9)
+    import numpy as np
+
+    fresh = compute_replica(spec, use_checkpoint=False)
+    assert np.asarray(fresh.gamma_strips).tobytes() == np.asarray(row["gamma_strips"]).tobytes()
+    acct = (Path("/tmp/slurm/log/jobcomp.log").read_text()
+            if Path("/tmp/slurm/log/jobcomp.log").exists() else "")
+    assert "TIMEOUT" in acct
+
+
+def test_in_allocation_script_killed_by_walltime_then_resubmitted(slow_reference, tmp_path):
+    recipe = write_recipe(tmp_path / "recipe.toml", SLOW)
+    store = tmp_path / "store"
+    env = {**os.environ, "RECIPE": str(recipe), "STORE": str(store), "PATH": f"{PY_BIN}:{os.environ['PATH']}"}
+    script = ROOT / "deploy" / "slurm" / "campaign.sbatch"
+
+    def submit(minutes: str) -> str:
+        out = subprocess.run(
+            ["sbatch", "--parsable", f"--time={minutes}", f"--chdir={ROOT}",
+             f"--output={tmp_path}/job-%j.out", str(script)],
+            capture_output=True, text=True, env=env, check=True,
+        )
+        return out.stdout.strip().split(";")[0]
+
+    def state(job: str) -> str:
+        out = subprocess.run(["scontrol", "show", "job", job], capture_output=True, text=True)
+        for tok in out.stdout.split():
+            if tok.startswith("JobState="):
+                return tok.split("=", 1)[1]
+        return "GONE"
+
+    first = submit("00:01:00")
+    wait_until(lambda: state(first) in ("TIMEOUT", "COMPLETED", "FAILED", "CANCELLED", "GONE"),
+               300, "the first allocation to end", poll=1.0)
+    assert state(first) in ("TIMEOUT", "GONE")
+    n_first = sum(pq.read_table(p).num_rows for p in (store / "replicas").glob("part-*.parquet"))
+    assert n_first > 0, "the first allocation stored something"
+    second = submit("00:10:00")
+    wait_until(lambda: state(second) in ("COMPLETED", "FAILED", "TIMEOUT", "CANCELLED", "GONE"),
+               900, "the second allocation to end", poll=1.0)
+    time.sleep(1)
+    log = "\n".join(p.read_text() for p in tmp_path.glob("job-*.out"))
+    assert state(second) in ("COMPLETED", "GONE"), log
+    pd.testing.assert_frame_equal(merged(store), slow_reference, check_exact=True)
+    assert cli("audit", store).returncode == 0
