@@ -37,8 +37,8 @@ from sweepctl.errors import SweepctlError
 
 __all__ = [
     "Profile",
-    "ensure_certificates",
     "ProfileError",
+    "ensure_certificates",
     "job_script",
     "load_profile",
     "make_cluster",
@@ -251,8 +251,10 @@ def _job_kwargs(p: Profile) -> dict:
     }
     if p.lifetime_seconds is not None:
         kw["worker_extra_args"] += [
-            "--lifetime", f"{p.lifetime_seconds}s",
-            "--lifetime-stagger", f"{p.stagger_seconds}s",
+            "--lifetime",
+            f"{p.lifetime_seconds}s",
+            "--lifetime-stagger",
+            f"{p.stagger_seconds}s",
         ]
     if p.queue:
         kw["queue"] = p.queue

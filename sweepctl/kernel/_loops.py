@@ -12,7 +12,7 @@ import math
 import numba
 import numpy as np
 
-__all__ = ["apply_columns", "unit_phases"]
+__all__ = ["apply_columns", "classify_nodes", "column_bounds", "unit_phases"]
 
 _TABLE_BITS = 8
 _TABLE_SIZE = 1 << _TABLE_BITS
@@ -23,29 +23,30 @@ _SIN_TABLE = np.sin(_ANGLES)
 
 @numba.njit(cache=True, nogil=True, boundscheck=False)
 def unit_phases(u, cos_out, sin_out):  # pragma: no cover - compiled
-    """``cos(2πu)``, ``sin(2πu)`` for ``u`` in ``[0, 1)``, elementwise.
+    """``cos(2πu)``, ``sin(2πu)`` for ``u`` in ``[0, 1)``, elementwise on ``(K, S, m)``.
 
     ``2πu`` is split into a table angle ``2πi/256`` and a remainder ``r < 2π/256``
     whose sine and cosine are degree-9/8 Taylor polynomials (truncation error
     below ``r^{10}/10! < 1e-22``), recombined by the addition theorem. Accurate to
     a few ulp and, unlike a call into libm per element, vectorisable.
     """
-    flat_u = u.reshape(-1)
-    flat_c = cos_out.reshape(-1)
-    flat_s = sin_out.reshape(-1)
     two_pi = 2.0 * math.pi
-    for n in range(flat_u.size):
-        y = flat_u[n] * _TABLE_SIZE  # exact: power-of-two scaling
-        i = int(y)
-        r = two_pi * ((y - i) / _TABLE_SIZE)
-        r2 = r * r
-        cr = 1.0 + r2 * (-0.5 + r2 * (1.0 / 24 + r2 * (-1.0 / 720 + r2 * (1.0 / 40320))))
-        sr = r * (1.0 + r2 * (-1.0 / 6 + r2 * (1.0 / 120 + r2 * (-1.0 / 5040 + r2 / 362880))))
-        i &= _TABLE_SIZE - 1
-        ca = _COS_TABLE[i]
-        sa = _SIN_TABLE[i]
-        flat_c[n] = ca * cr - sa * sr
-        flat_s[n] = sa * cr + ca * sr
+    for k in range(cos_out.shape[0]):
+        for s_ in range(cos_out.shape[1]):
+            for j in range(cos_out.shape[2]):  # u may have further columns: not read
+                y = u[k, s_, j] * _TABLE_SIZE  # exact: power-of-two scaling
+                i = int(y)
+                r = two_pi * ((y - i) / _TABLE_SIZE)
+                r2 = r * r
+                cr = 1.0 + r2 * (-0.5 + r2 * (1.0 / 24 + r2 * (-1.0 / 720 + r2 * (1.0 / 40320))))
+                sr = r * (
+                    1.0 + r2 * (-1.0 / 6 + r2 * (1.0 / 120 + r2 * (-1.0 / 5040 + r2 / 362880)))
+                )
+                i &= _TABLE_SIZE - 1
+                ca = _COS_TABLE[i]
+                sa = _SIN_TABLE[i]
+                cos_out[k, s_, j] = ca * cr - sa * sr
+                sin_out[k, s_, j] = sa * cr + ca * sr
 
 
 @numba.njit(cache=True, nogil=True, boundscheck=False, fastmath={"contract"})
@@ -105,3 +106,42 @@ def apply_columns(frame, kinds, pcos, psin, table, col0, col1):  # pragma: no co
                     xa[2 * m + 1] = car * ti + cai * tr
                     xb[2 * m] = cbr * vr - cbi * vi
                     xb[2 * m + 1] = cbr * vi + cbi * vr
+
+
+@numba.njit(cache=True, nogil=True, boundscheck=False)
+def classify_nodes(u, off, n, p_block, p_open, kinds):  # pragma: no cover - compiled
+    """Node kinds from their uniform variates, in place (no temporaries).
+
+    A node (columns ``off .. off+n`` of ``u``) is blocking if ``v < p_block``, open if
+    ``v < p_block + p_open``; a B node (``off+n .. off+2n``) swaps the roles.
+    """
+    both = p_block + p_open
+    for k in range(u.shape[0]):
+        for s in range(u.shape[1]):
+            for j in range(n):
+                va = u[k, s, off + j]
+                kinds[k, s, j] = 1 if va < p_block else (2 if va < both else 0)
+                vb = u[k, s, off + n + j]
+                kinds[k, s, n + j] = 1 if vb < p_open else (2 if vb < both else 0)
+
+
+@numba.njit(cache=True, nogil=True, boundscheck=False)
+def column_bounds(kinds, growth, bounds, counts, measuring):  # pragma: no cover - compiled
+    """Per column: the largest ``growth[sublattice, kind]`` over nodes and strips.
+
+    Also adds the node-kind counts per strip to ``counts`` (``(S, 2, 3)``) when
+    ``measuring``.
+    """
+    n = kinds.shape[2] // 2
+    for k in range(kinds.shape[0]):
+        for half in range(2):
+            best = 0
+            for s in range(kinds.shape[1]):
+                for j in range(n):
+                    kind = kinds[k, s, half * n + j]
+                    g = growth[half, kind]
+                    if g > best:
+                        best = g
+                    if measuring:
+                        counts[s, half, kind] += 1
+            bounds[2 * k + half] = best

@@ -12,6 +12,7 @@ against 1.2 ms here, one thread).
 from __future__ import annotations
 
 import ctypes
+import threading
 
 import llvmlite.binding as llvm_binding
 import numba
@@ -92,6 +93,30 @@ def _qr_batch(frame, logd, col_major, tau, work):  # pragma: no cover - compiled
     return 0
 
 
+_local = threading.local()
+
+
+def _workspace(rows: int, cols: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per-thread scratch arrays, reused: fresh ones each call are slow under Dask's
+    low ``MALLOC_TRIM_THRESHOLD_``."""
+    cache = getattr(_local, "cache", None)
+    if cache is None:
+        cache = _local.cache = {}
+    key = (rows, cols)
+    if key not in cache:
+        if len(cache) > 8:
+            cache.clear()
+        # The blocked algorithm only pays from 128 columns (LAPACK's crossover);
+        # below that the minimal workspace measured faster.
+        lwork = max(1, (32 if cols >= 128 else 3) * cols)
+        cache[key] = (
+            np.empty((cols, rows), dtype=np.complex128),
+            np.empty(cols, dtype=np.complex128),
+            np.empty(lwork, dtype=np.complex128),
+        )
+    return cache[key]
+
+
 def reorthogonalise(frame: np.ndarray) -> np.ndarray:
     """Replace each frame by the ``Q`` of its Householder QR, in place.
 
@@ -112,16 +137,8 @@ def reorthogonalise(frame: np.ndarray) -> np.ndarray:
     if rows < cols:
         raise ValueError(f"frame has fewer rows ({rows}) than columns ({cols})")
     logd = np.empty((n_strips, cols))
-    # The blocked algorithm only pays from 128 columns (LAPACK's crossover);
-    # below that the minimal workspace measured faster.
-    work = np.empty(max(1, (32 if cols >= 128 else 3) * cols), dtype=np.complex128)
-    info = _qr_batch(
-        frame,
-        logd,
-        np.empty((cols, rows), dtype=np.complex128),
-        np.empty(cols, dtype=np.complex128),
-        work,
-    )
+    col_major, tau, work = _workspace(rows, cols)
+    info = _qr_batch(frame, logd, col_major, tau, work)
     if info != 0:  # pragma: no cover - LAPACK argument error
         raise RuntimeError(f"LAPACK QR failed with info={info}")
     return logd

@@ -173,25 +173,33 @@ class LayerDraws:
 
 
 def draw_layers(
-    model: NetworkModel, rng: np.random.Generator, layers: int, strips: int
+    model: NetworkModel,
+    rng: np.random.Generator,
+    layers: int,
+    strips: int,
+    out: tuple[np.ndarray, np.ndarray] | None = None,
 ) -> LayerDraws:
     """Draw the random content of ``layers`` layers for ``strips`` strips.
 
     One call for ``K1 + K2`` layers consumes the bit stream exactly as two calls for
     ``K1`` and ``K2`` layers (``Generator.random`` fills in C order, one 64-bit word
-    per variate), which is what makes results independent of chunking.
+    per variate), which is what makes results independent of chunking. ``out`` may
+    give reusable buffers ``(uniforms, kinds)`` of at least ``layers`` rows.
     """
+    from sweepctl.kernel._loops import classify_nodes
+
     n = model.width
-    u = rng.random((layers, strips, model.draws_per_layer))
-    kinds = np.zeros((layers, strips, 2 * n), dtype=np.int8)
+    if out is None:
+        u = np.empty((layers, strips, model.draws_per_layer))
+        kinds = np.empty((layers, strips, 2 * n), dtype=np.int8)
+    else:
+        u, kinds = out[0][:layers], out[1][:layers]
+    rng.random(out=u)
     if model.has_node_disorder:
         off = 4 * n if model.phase_disorder else 0
-        va = u[:, :, off : off + n]
-        vb = u[:, :, off + n : off + 2 * n]
-        pb, po = model.p_block, model.p_open
-        # A: blocking with p_block, open with p_open; B: the roles swap.
-        kinds[:, :, :n] = np.where(va < pb, BLOCKING, np.where(va < pb + po, OPEN, NORMAL))
-        kinds[:, :, n:] = np.where(vb < po, BLOCKING, np.where(vb < po + pb, OPEN, NORMAL))
+        classify_nodes(u, off, n, model.p_block, model.p_open, kinds)
+    else:
+        kinds[...] = NORMAL
     return LayerDraws(uniforms=u, kinds=kinds)
 
 

@@ -101,7 +101,8 @@ def overhead(layers: int, tmp: Path) -> None:
     print(f"{'':44}{'wall s':>9}")
     print(f"{'plain loop over the kernel':44}{plain:9.1f}")
     print(
-        f"{'sweepctl run, 1 worker (whole command)':44}{t1:9.1f}   overhead {(t1 - plain) / t1:6.1%} of wall"
+        f"{'sweepctl run, 1 worker (whole command)':44}{t1:9.1f}   "
+        f"overhead {(t1 - plain) / t1:6.1%} of wall"
     )
     print(
         f"{'  of which inside replicas on the worker':44}{inside:9.1f}   "

@@ -14,8 +14,16 @@ EXAMPLES = Path(__file__).resolve().parents[2] / "deploy" / "clusters.example.to
 @pytest.mark.parametrize(
     ("name", "directives"),
     [
-        ("slurm-standard", ["#SBATCH --time=24:00:00", "#SBATCH -p standard", "#SBATCH -A phys-qh",
-                            "#SBATCH --cpus-per-task=32", "#SBATCH --mem=112G"]),
+        (
+            "slurm-standard",
+            [
+                "#SBATCH --time=24:00:00",
+                "#SBATCH -p standard",
+                "#SBATCH -A phys-qh",
+                "#SBATCH --cpus-per-task=32",
+                "#SBATCH --mem=112G",
+            ],
+        ),
         ("pbs-long", ["#PBS -l walltime=48:00:00", "#PBS -q long", "#PBS -A qh2026"]),
         ("sge-short", ["#$ -l h_rt=04:00:00", "#$ -q short.q", "#$ -P qhall", "#$ -pe smp 16"]),
         ("lsf-normal", ["#BSUB -W 12:00", "#BSUB -q normal", "#BSUB -P qh-project", "#BSUB -n 20"]),
@@ -54,7 +62,7 @@ def test_precedence_command_line_over_file_over_defaults(tmp_path):
         ('system = "slurm"\ncores = 0', "profiles.x.cores"),
         ('system = "slurm"\ncores = 4\nprocesses = 8', "processes"),
         ('system = "slurm"\nprologue = "module load x"', "profiles.x.prologue"),
-        ('cores = 4', "system is missing"),
+        ("cores = 4", "system is missing"),
     ],
 )
 def test_profile_errors_name_the_key(body, needle, tmp_path):

@@ -193,6 +193,7 @@ def test_bad_model_parameters(kwargs, match):
 def test_unit_phases_accurate():
     u = np.random.default_rng(0).random(200_000)
     u[:3] = [0.0, 0.5, 1.0 - 2.0**-53]
+    u = u.reshape(1, 1, -1)
     c, s = np.empty_like(u), np.empty_like(u)
     unit_phases(u, c, s)
     # [derived] table + degree-9 Taylor remainder: error a few ulp of 1.

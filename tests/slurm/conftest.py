@@ -8,9 +8,12 @@ import subprocess
 
 import pytest
 
-HAVE_SLURM = shutil.which("sbatch") is not None and subprocess.run(
-    ["sinfo", "-h"], capture_output=True, timeout=10
-).returncode == 0 if shutil.which("sinfo") else False
+HAVE_SLURM = (
+    shutil.which("sbatch") is not None
+    and subprocess.run(["sinfo", "-h"], capture_output=True, timeout=10).returncode == 0
+    if shutil.which("sinfo")
+    else False
+)
 
 
 def pytest_collection_modifyitems(config, items):
@@ -23,6 +26,8 @@ def pytest_collection_modifyitems(config, items):
             "SWEEPCTL_REQUIRE_SLURM is set but no working Slurm answers (sinfo failed); "
             "start one with .ci/slurm-up.sh"
         )
-    skip = pytest.mark.skip(reason="no Slurm here (no sbatch/sinfo); start one with .ci/slurm-up.sh")
+    skip = pytest.mark.skip(
+        reason="no Slurm here (no sbatch/sinfo); start one with .ci/slurm-up.sh"
+    )
     for it in mine:
         it.add_marker(skip)

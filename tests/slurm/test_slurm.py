@@ -26,9 +26,17 @@ SLOW = {
 
 def profile(tmp: Path, **extra) -> Path:
     body = {
-        "system": '"slurm"', "queue": '"debug"', "cores": "2", "processes": "2",
-        "memory": '"2GB"', "walltime": '"00:10:00"', "lifetime_margin": '"1m"',
-        "min_jobs": "1", "max_jobs": "1", "interface": '"lo"', "scheduler_host": '"127.0.0.1"',
+        "system": '"slurm"',
+        "queue": '"debug"',
+        "cores": "2",
+        "processes": "2",
+        "memory": '"2GB"',
+        "walltime": '"00:10:00"',
+        "lifetime_margin": '"1m"',
+        "min_jobs": "1",
+        "max_jobs": "1",
+        "interface": '"lo"',
+        "scheduler_host": '"127.0.0.1"',
         "prologue": f'["export PATH={PY_BIN}:$PATH", "cd {ROOT}"]',
     }
     body.update({k: v for k, v in extra.items()})
@@ -65,8 +73,17 @@ def slow_reference(tmp_path_factory):
 
 def test_campaign_through_slurmcluster_matches_local(slow_reference, tmp_path):
     recipe = write_recipe(tmp_path / "recipe.toml", SLOW)
-    proc = cli("run", recipe, "--store", tmp_path / "store", "--cluster", "test",
-               "--profiles", profile(tmp_path), timeout=900)
+    proc = cli(
+        "run",
+        recipe,
+        "--store",
+        tmp_path / "store",
+        "--cluster",
+        "test",
+        "--profiles",
+        profile(tmp_path),
+        timeout=900,
+    )
     assert proc.returncode == 0, proc.stdout + proc.stderr
     assert "SLURMCluster" in proc.stdout
     pd.testing.assert_frame_equal(merged(tmp_path / "store"), slow_reference, check_exact=True)
@@ -78,11 +95,23 @@ def test_campaign_through_slurmcluster_matches_local(slow_reference, tmp_path):
 def test_worker_job_cancelled_mid_campaign(slow_reference, tmp_path):
     recipe = write_recipe(tmp_path / "recipe.toml", SLOW)
     store = tmp_path / "store"
-    drv = start_cli("run", recipe, "--store", store, "--cluster", "test", "--profiles",
-                    profile(tmp_path), log=tmp_path / "log")
+    drv = start_cli(
+        "run",
+        recipe,
+        "--store",
+        store,
+        "--cluster",
+        "test",
+        "--profiles",
+        profile(tmp_path),
+        log=tmp_path / "log",
+    )
     try:
-        wait_until(lambda: sum(e.get("event") == "finished" for e in events(store)) >= 3, 300,
-                   "three finished replicas")
+        wait_until(
+            lambda: sum(e.get("event") == "finished" for e in events(store)) >= 3,
+            300,
+            "three finished replicas",
+        )
         victims = jobs()
         assert victims
         subprocess.run(["scancel", *victims], check=True)
@@ -105,8 +134,9 @@ def test_worker_job_hits_walltime_mid_replica(tmp_path):
     store = tmp_path / "store"
     # one-minute jobs and no early retirement: Slurm's TIMEOUT ends the worker mid-replica
     prof = profile(tmp_path, walltime='"00:01:00"', lifetime_margin='"off"')
-    proc = cli("run", recipe, "--store", store, "--cluster", "test", "--profiles", prof,
-               timeout=1500)
+    proc = cli(
+        "run", recipe, "--store", store, "--cluster", "test", "--profiles", prof, timeout=1500
+    )
     assert proc.returncode == 0, proc.stdout + proc.stderr
     row = pq.read_table(store / "replicas").to_pylist()[0]
     assert row["resumed_at_layer"] > 0
@@ -114,29 +144,53 @@ def test_worker_job_hits_walltime_mid_replica(tmp_path):
     from sweepctl.recipe import Point
     from sweepctl.worker import compute_replica
 
-    spec = ReplicaSpec(point=Point(0.0, 0.0, 1e-6, 8, 0.1), replica=0,
-                       entropy=int(row["entropy"], 16), layers=10_000_000, warmup=32,
-                       strips=4, checkpoint="", checkpoint_seconds=1e9)
+    spec = ReplicaSpec(
+        point=Point(0.0, 0.0, 1e-6, 8, 0.1),
+        replica=0,
+        entropy=int(row["entropy"], 16),
+        layers=10_000_000,
+        warmup=32,
+        strips=4,
+        checkpoint="",
+        checkpoint_seconds=1e9,
+    )
     import numpy as np
 
     fresh = compute_replica(spec, use_checkpoint=False)
     assert np.asarray(fresh.gamma_strips).tobytes() == np.asarray(row["gamma_strips"]).tobytes()
-    acct = (Path("/tmp/slurm/log/jobcomp.log").read_text()
-            if Path("/tmp/slurm/log/jobcomp.log").exists() else "")
+    acct = (
+        Path("/tmp/slurm/log/jobcomp.log").read_text()
+        if Path("/tmp/slurm/log/jobcomp.log").exists()
+        else ""
+    )
     assert "TIMEOUT" in acct
 
 
 def test_in_allocation_script_killed_by_walltime_then_resubmitted(slow_reference, tmp_path):
     recipe = write_recipe(tmp_path / "recipe.toml", SLOW)
     store = tmp_path / "store"
-    env = {**os.environ, "RECIPE": str(recipe), "STORE": str(store), "PATH": f"{PY_BIN}:{os.environ['PATH']}"}
+    env = {
+        **os.environ,
+        "RECIPE": str(recipe),
+        "STORE": str(store),
+        "PATH": f"{PY_BIN}:{os.environ['PATH']}",
+    }
     script = ROOT / "deploy" / "slurm" / "campaign.sbatch"
 
     def submit(minutes: str) -> str:
         out = subprocess.run(
-            ["sbatch", "--parsable", f"--time={minutes}", f"--chdir={ROOT}",
-             f"--output={tmp_path}/job-%j.out", str(script)],
-            capture_output=True, text=True, env=env, check=True,
+            [
+                "sbatch",
+                "--parsable",
+                f"--time={minutes}",
+                f"--chdir={ROOT}",
+                f"--output={tmp_path}/job-%j.out",
+                str(script),
+            ],
+            capture_output=True,
+            text=True,
+            env=env,
+            check=True,
         )
         return out.stdout.strip().split(";")[0]
 
@@ -148,14 +202,22 @@ def test_in_allocation_script_killed_by_walltime_then_resubmitted(slow_reference
         return "GONE"
 
     first = submit("00:01:00")
-    wait_until(lambda: state(first) in ("TIMEOUT", "COMPLETED", "FAILED", "CANCELLED", "GONE"),
-               300, "the first allocation to end", poll=1.0)
+    wait_until(
+        lambda: state(first) in ("TIMEOUT", "COMPLETED", "FAILED", "CANCELLED", "GONE"),
+        300,
+        "the first allocation to end",
+        poll=1.0,
+    )
     assert state(first) in ("TIMEOUT", "GONE")
     n_first = sum(pq.read_table(p).num_rows for p in (store / "replicas").glob("part-*.parquet"))
     assert n_first > 0, "the first allocation stored something"
     second = submit("00:10:00")
-    wait_until(lambda: state(second) in ("COMPLETED", "FAILED", "TIMEOUT", "CANCELLED", "GONE"),
-               900, "the second allocation to end", poll=1.0)
+    wait_until(
+        lambda: state(second) in ("COMPLETED", "FAILED", "TIMEOUT", "CANCELLED", "GONE"),
+        900,
+        "the second allocation to end",
+        poll=1.0,
+    )
     time.sleep(1)
     log = "\n".join(p.read_text() for p in tmp_path.glob("job-*.out"))
     assert state(second) in ("COMPLETED", "GONE"), log
