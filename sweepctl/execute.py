@@ -201,6 +201,7 @@ class Connection:
             {
                 "distributed.scheduler.allowed-failures": 10,
                 "distributed.admin.tick.limit": "60s",
+                "distributed.admin.tick.interval": "500ms",  # default 20 ms: GIL wake-ups
                 # The workers' sampling profiler takes the GIL every 10 ms from a
                 # compute-bound task; sweepctl has no use for it.
                 "distributed.worker.profile.enabled": False,
