@@ -24,6 +24,14 @@ SLOW = {
 }
 
 
+# long enough that a one-minute allocation cannot finish it
+ALLOC = {
+    "axes": {"widths": [2, 3, 4]},
+    "precision": {"target": 0.0007, "max_layers": 20_000_000},
+    "replica": {"layers": 600_000, "checkpoint_seconds": 2},
+}
+
+
 def profile(tmp: Path, **extra) -> Path:
     body = {
         "system": '"slurm"',
@@ -36,7 +44,7 @@ def profile(tmp: Path, **extra) -> Path:
         "min_jobs": "1",
         "max_jobs": "1",
         "interface": '"lo"',
-        "scheduler_host": '"127.0.0.1"',
+        "lifetime_stagger": '"0s"',
         "prologue": f'["export PATH={PY_BIN}:$PATH", "cd {ROOT}"]',
     }
     body.update({k: v for k, v in extra.items()})
@@ -127,8 +135,8 @@ def test_worker_job_cancelled_mid_campaign(slow_reference, tmp_path):
 def test_worker_job_hits_walltime_mid_replica(tmp_path):
     over = {
         "axes": {"widths": [8], "couplings": [0.1]},
-        "precision": {"target": 0.5, "max_layers": 10_000_000},
-        "replica": {"layers": 10_000_000, "initial": 1, "checkpoint_seconds": 5},
+        "precision": {"target": 0.5, "max_layers": 20_000_000},
+        "replica": {"layers": 20_000_000, "initial": 1, "checkpoint_seconds": 5},
     }
     recipe = write_recipe(tmp_path / "recipe.toml", over)
     store = tmp_path / "store"
@@ -166,8 +174,10 @@ def test_worker_job_hits_walltime_mid_replica(tmp_path):
     assert "TIMEOUT" in acct
 
 
-def test_in_allocation_script_killed_by_walltime_then_resubmitted(slow_reference, tmp_path):
-    recipe = write_recipe(tmp_path / "recipe.toml", SLOW)
+def test_in_allocation_script_killed_by_walltime_then_resubmitted(tmp_path):
+    recipe = write_recipe(tmp_path / "recipe.toml", ALLOC)
+    ref = tmp_path / "reference"
+    assert cli("run", recipe, "--store", ref, "--workers", "2", timeout=1200).returncode == 0
     store = tmp_path / "store"
     env = {
         **os.environ,
@@ -221,5 +231,5 @@ def test_in_allocation_script_killed_by_walltime_then_resubmitted(slow_reference
     time.sleep(1)
     log = "\n".join(p.read_text() for p in tmp_path.glob("job-*.out"))
     assert state(second) in ("COMPLETED", "GONE"), log
-    pd.testing.assert_frame_equal(merged(store), slow_reference, check_exact=True)
+    pd.testing.assert_frame_equal(merged(store), merged(ref), check_exact=True)
     assert cli("audit", store).returncode == 0
