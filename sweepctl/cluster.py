@@ -248,9 +248,10 @@ def _job_kwargs(p: Profile) -> dict:
             "1",
         ],
         "name": f"sweepctl-{p.name}",
+        "job_name": f"sweepctl-{p.name}",
     }
     if p.lifetime_seconds is not None:
-        kw["worker_extra_args"] += [
+        kw["worker_extra_args"] = [
             "--lifetime",
             f"{p.lifetime_seconds}s",
             "--lifetime-stagger",

@@ -17,7 +17,7 @@ EXAMPLES = Path(__file__).resolve().parents[2] / "deploy" / "clusters.example.to
         (
             "slurm-standard",
             [
-                "#SBATCH --time=24:00:00",
+                "#SBATCH -t 24:00:00",
                 "#SBATCH -p standard",
                 "#SBATCH -A phys-qh",
                 "#SBATCH --cpus-per-task=32",
@@ -26,7 +26,10 @@ EXAMPLES = Path(__file__).resolve().parents[2] / "deploy" / "clusters.example.to
         ),
         ("pbs-long", ["#PBS -l walltime=48:00:00", "#PBS -q long", "#PBS -A qh2026"]),
         ("sge-short", ["#$ -l h_rt=04:00:00", "#$ -q short.q", "#$ -P qhall", "#$ -pe smp 16"]),
-        ("lsf-normal", ["#BSUB -W 12:00", "#BSUB -q normal", "#BSUB -P qh-project", "#BSUB -n 20"]),
+        (
+            "lsf-normal",
+            ["#BSUB -W 12:00", "#BSUB -q normal", '#BSUB -P "qh-project"', "#BSUB -n 20"],
+        ),
     ],
 )
 def test_job_script_directives_prologue_lifetime(name, directives):
@@ -40,6 +43,8 @@ def test_job_script_directives_prologue_lifetime(name, directives):
     assert f"--lifetime {p.walltime_seconds - 600}s" in script
     assert "--lifetime-stagger 240s" in script
     assert f"--nworkers {p.processes}" in script and "--nthreads 1" in script
+    assert script.count("--lifetime ") == 1
+    assert f"-J sweepctl-{name}" in script or f"-N sweepctl-{name}" in script
     assert "tls://10.0.0.1:8786" in script
 
 

@@ -21,18 +21,43 @@ def tls_scheduler(tmp_path):
     sched_file = tmp_path / "scheduler.json"
     tls = ["--tls-ca-file", str(f["ca"]), "--tls-cert", str(f["cert"]), "--tls-key", str(f["key"])]
     sched = subprocess.Popen(
-        [sys.executable, "-m", "distributed.cli.dask_scheduler", "--protocol", "tls",
-         "--host", "127.0.0.1", "--port", "0", "--no-dashboard", "--scheduler-file",
-         str(sched_file), *tls],
-        stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+        [
+            sys.executable,
+            "-m",
+            "distributed.cli.dask_scheduler",
+            "--protocol",
+            "tls",
+            "--host",
+            "127.0.0.1",
+            "--port",
+            "0",
+            "--no-dashboard",
+            "--scheduler-file",
+            str(sched_file),
+            *tls,
+        ],
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
     )
     worker = None
     try:
         wait_until(lambda: sched_file.exists() and sched_file.stat().st_size > 0, 60, "scheduler")
         worker = subprocess.Popen(
-            [sys.executable, "-m", "distributed.cli.dask_worker", "--scheduler-file",
-             str(sched_file), "--nthreads", "1", "--host", "127.0.0.1", "--no-dashboard", *tls],
-            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
+            [
+                sys.executable,
+                "-m",
+                "distributed.cli.dask_worker",
+                "--scheduler-file",
+                str(sched_file),
+                "--nthreads",
+                "1",
+                "--host",
+                "127.0.0.1",
+                "--no-dashboard",
+                *tls,
+            ],
+            stdout=subprocess.DEVNULL,
+            stderr=subprocess.DEVNULL,
         )
         yield store, json.loads(sched_file.read_text())["address"]
     finally:
