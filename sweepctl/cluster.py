@@ -401,5 +401,60 @@ def make_cluster(p: Profile, store_root: Path):
     kw["scheduler_options"] = sched
     kw["log_directory"] = str(store_root / "batch-logs")
     cluster = cls(**kw)
+    cluster.sweepctl_system = p.system  # for the driver's watchdog
     cluster.adapt(minimum_jobs=p.min_jobs, maximum_jobs=p.max_jobs)
     return cluster
+
+
+# -------------------------------------------------------------------------- watchdog
+
+_STATUS = {
+    "slurm": lambda j: ["squeue", "-h", "-j", j, "-o", "%T"],
+    "pbs": lambda j: ["qstat", j],
+    "sge": lambda j: ["qstat", "-j", j],
+    "lsf": lambda j: ["bjobs", "-noheader", j],
+}
+_ENDED = (
+    "COMPLETED",
+    "CANCELLED",
+    "FAILED",
+    "TIMEOUT",
+    "PREEMPTED",
+    "NODE_FAIL",
+    "BOOT_FAIL",
+    "OUT_OF_MEMORY",
+    "DEADLINE",
+    "DONE",
+    "EXIT",
+)
+
+
+def job_alive(system: str, job_id: str) -> bool:
+    """Whether the batch system still knows the job (queued or running)."""
+    try:
+        proc = subprocess.run(
+            _STATUS[system](str(job_id)), capture_output=True, text=True, timeout=30
+        )
+    except (OSError, subprocess.SubprocessError):
+        return True  # cannot tell: keep it
+    out = proc.stdout.strip()
+    if proc.returncode != 0 or not out:
+        return False
+    return not any(state in out.split() for state in _ENDED)
+
+
+def prune_dead_jobs(cluster, system: str) -> list[str]:
+    """Forget worker jobs the batch system has ended (scancel, walltime, preemption).
+
+    dask-jobqueue does not notice jobs that end behind its back, so adaptive scaling
+    would keep counting them and never ask for replacements; forgetting them lets it
+    submit new jobs. Returns the job ids dropped.
+    """
+    dropped = []
+    for name, job in list(getattr(cluster, "workers", {}).items()):
+        jid = getattr(job, "job_id", None)
+        if jid and not job_alive(system, jid):
+            cluster.worker_spec.pop(name, None)
+            cluster.workers.pop(name, None)
+            dropped.append(str(jid))
+    return dropped

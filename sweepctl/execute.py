@@ -221,6 +221,8 @@ class Connection:
             self.kind = f"scheduler {options.scheduler}"
         elif options.cluster_factory is not None:
             self.cluster = options.cluster_factory()
+            self._watch = threading.Event()
+            threading.Thread(target=self._watchdog, daemon=True, name="sweepctl-jobs").start()
             self.client = Client(self.cluster, security=getattr(self.cluster, "security", None))
             self.kind = f"{type(self.cluster).__name__} (TLS, adaptive)"
         else:
@@ -236,6 +238,20 @@ class Connection:
             self.client = Client(self.cluster)
             self.kind = f"local cluster, {n} worker processes"
 
+    #: callback for watchdog reports (set by the driver)
+    on_event: Callable[[dict], None] | None = None
+
+    def _watchdog(self) -> None:
+        """Every 10 s, forget batch jobs that ended behind dask-jobqueue's back."""
+        from sweepctl.cluster import prune_dead_jobs
+
+        system = getattr(self.cluster, "sweepctl_system", None)
+        while system and not self._watch.wait(10.0):
+            with contextlib.suppress(Exception):
+                dropped = self.cluster.sync(_call, prune_dead_jobs, self.cluster, system)
+                if dropped and self.on_event:
+                    self.on_event({"event": "jobs-ended", "jobs": dropped})
+
     def worker_pids(self) -> dict[str, list[int]]:
         """``{address: [pid, parent pid]}`` of every worker (for the events log)."""
         with contextlib.suppress(Exception):
@@ -248,11 +264,18 @@ class Connection:
         return 1
 
     def close(self) -> None:
+        if getattr(self, "_watch", None) is not None:
+            self._watch.set()
         with contextlib.suppress(Exception):
             self.client.close(timeout=10)
         if self.cluster is not None:
             with contextlib.suppress(Exception):
                 self.cluster.close(timeout=20)
+
+
+async def _call(fn, *args):
+    """Run ``fn`` on the cluster's event loop (its dicts are not thread-safe)."""
+    return fn(*args)
 
 
 def _cores() -> int:
@@ -363,6 +386,7 @@ def run_campaign(
         try:
             conn = Connection(options)
             conn.client.subscribe_topic("sweepctl", on_worker_event)
+            conn.on_event = lambda m: on_worker_event((None, m))
             pids = conn.worker_pids()
             store.append_events(
                 [{"time": now_iso(), "event": "cluster", "kind": conn.kind, "workers": pids}]
