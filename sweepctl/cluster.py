@@ -239,14 +239,7 @@ def _job_kwargs(p: Profile) -> dict:
         "walltime": _hms(p.walltime_seconds) if p.system != "lsf" else _lsf_walltime(p),
         "job_script_prologue": list(p.prologue),
         "job_extra_directives": list(p.directives),
-        "worker_extra_args": [
-            "--lifetime",
-            f"{p.lifetime_seconds}s",
-            "--lifetime-stagger",
-            f"{p.stagger_seconds}s",
-            "--nthreads",
-            "1",
-        ],
+        "worker_extra_args": [],
         "name": f"sweepctl-{p.name}",
         "job_name": f"sweepctl-{p.name}",
     }

@@ -240,17 +240,35 @@ class Connection:
 
     #: callback for watchdog reports (set by the driver)
     on_event: Callable[[dict], None] | None = None
+    #: why the watchdog stopped the run, if it did
+    fatal: str | None = None
 
     def _watchdog(self) -> None:
         """Every 10 s, forget batch jobs that ended behind dask-jobqueue's back."""
         from sweepctl.cluster import prune_dead_jobs
 
         system = getattr(self.cluster, "sweepctl_system", None)
+        ever_connected = False
+        ended_unconnected = 0
         while system and not self._watch.wait(10.0):
             with contextlib.suppress(Exception):
+                ever_connected |= bool(self.client.scheduler_info().get("workers"))
                 dropped = self.cluster.sync(_call, prune_dead_jobs, self.cluster, system)
                 if dropped and self.on_event:
                     self.on_event({"event": "jobs-ended", "jobs": dropped})
+                if not ever_connected:
+                    ended_unconnected += len(dropped)
+                if ended_unconnected >= 5:
+                    # A broken profile would otherwise submit jobs forever.
+                    self.fatal = (
+                        f"{ended_unconnected} worker jobs ended before any worker connected; "
+                        "read the job logs in STORE/batch-logs/ and fix the profile "
+                        "(prologue, python, interface)"
+                    )
+                    import _thread
+
+                    _thread.interrupt_main()
+                    return
 
     def worker_pids(self) -> dict[str, list[int]]:
         """``{address: [pid, parent pid]}`` of every worker (for the events log)."""
@@ -526,8 +544,13 @@ def run_campaign(
                     }
                 )
         except KeyboardInterrupt:
-            interrupted = True
-            say({"kind": "log", "message": "interrupted: saving what has arrived"})
+            if conn is not None and conn.fatal:
+                failed_points += 1
+                say({"kind": "log", "message": f"stopped: {conn.fatal}"})
+                store.append_events([{"time": now_iso(), "event": "failed", "error": conn.fatal}])
+            else:
+                interrupted = True
+                say({"kind": "log", "message": "interrupted: saving what has arrived"})
         finally:
             flush()
             store.append_events(
@@ -543,7 +566,10 @@ def run_campaign(
                 conn.close()
             with contextlib.suppress(ValueError, TypeError):
                 signal.signal(signal.SIGTERM, old_term)
-        return _result(progress, computed, interrupted, t0)
+        res = _result(progress, computed, interrupted, t0)
+        if failed_points and not res.failed:
+            res.failed = failed_points
+        return res
 
 
 def _eta(progress, frozen, cost, observed: dict[int, list[float]], workers) -> float | None:
