@@ -323,7 +323,7 @@ def run_campaign(
     t0 = time.perf_counter()
     say = report or (lambda _m: None)
     if not store.exists():
-        if store.root.exists() and any(store.root.iterdir()):
+        if store.foreign_entries():
             raise StoreError(
                 f"{store.root}: directory exists and is not a sweepctl store; "
                 "choose an empty or new directory"

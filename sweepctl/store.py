@@ -176,6 +176,18 @@ class Store:
     def exists(self) -> bool:
         return self.campaign_file.is_file()
 
+    def foreign_entries(self) -> list[Path]:
+        """Entries of the directory that sweepctl did not put there (before creation:
+        the lock, TLS certificates, scheduler files and batch logs are its own)."""
+        if not self.root.exists():
+            return []
+        own = {"lock", "tls", "batch-logs"}
+        return [
+            p
+            for p in self.root.iterdir()
+            if p.name not in own and not (p.name.startswith("scheduler") and p.suffix == ".json")
+        ]
+
     def require(self) -> None:
         """Raise a clear error unless this is a store."""
         if not self.root.exists():
@@ -185,8 +197,7 @@ class Store:
 
     def create(self, campaign: dict) -> None:
         """Create the directory layout and the first campaign.json."""
-        foreign = [p for p in self.root.iterdir() if p.name != "lock"] if self.root.exists() else []
-        if foreign and not self.exists():
+        if self.foreign_entries() and not self.exists():
             raise StoreError(
                 f"{self.root}: directory exists and is not a sweepctl store; "
                 "choose an empty or new directory"

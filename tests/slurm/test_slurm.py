@@ -34,7 +34,7 @@ MEDIUM = {
 # long enough that a one-minute allocation cannot finish it
 ALLOC = {
     "axes": {"widths": [2, 3, 4]},
-    "precision": {"target": 0.0007, "max_layers": 20_000_000},
+    "precision": {"target": 0.0004, "max_layers": 40_000_000},
     "replica": {"layers": 600_000, "checkpoint_seconds": 2},
 }
 
