@@ -4,8 +4,6 @@ from __future__ import annotations
 
 import shutil
 import signal
-import subprocess
-import sys
 
 import pandas as pd
 import pyarrow.parquet as pq
@@ -14,6 +12,7 @@ from sweepctl.plan import CostModel, freeze
 from sweepctl.recipe import parse_recipe
 from tests.campaign.helpers import (
     cli,
+    dask_cluster,
     events,
     kill_pids,
     merged,
@@ -88,58 +87,14 @@ def test_ctrl_c_stops_cleanly_and_the_rerun_completes(tmp_path):
 
 def test_existing_cluster_through_a_scheduler_file(reference_store, tmp_path):
     sched_file = tmp_path / "scheduler.json"
-    sched = subprocess.Popen(
-        [
-            sys.executable,
-            "-m",
-            "distributed.cli.dask_scheduler",
-            "--host",
-            "127.0.0.1",
-            "--port",
-            "0",
-            "--no-dashboard",
-            "--scheduler-file",
-            str(sched_file),
-        ],
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.DEVNULL,
-    )
-    worker = None
-    try:
-        wait_until(sched_file.exists, 60, "the scheduler file")
-        worker = subprocess.Popen(
-            [
-                sys.executable,
-                "-m",
-                "distributed.cli.dask_worker",
-                "--scheduler-file",
-                str(sched_file),
-                "--nthreads",
-                "1",
-                "--nworkers",
-                "2",
-                "--host",
-                "127.0.0.1",
-                "--no-dashboard",
-            ],
-            stdout=subprocess.DEVNULL,
-            stderr=subprocess.DEVNULL,
-        )
+    with dask_cluster(sched_file):
         recipe = write_recipe(tmp_path / "recipe.toml")
         proc = cli("run", recipe, "--store", tmp_path / "store", "--scheduler-file", sched_file)
         assert proc.returncode == 0, proc.stdout + proc.stderr
         assert "scheduler-file" in proc.stdout
-        pd.testing.assert_frame_equal(
-            merged(tmp_path / "store"), merged(reference_store), check_exact=True
-        )
-    finally:
-        for p in (worker, sched):
-            if p is not None and p.poll() is None:
-                p.terminate()
-                try:
-                    p.wait(timeout=30)
-                except subprocess.TimeoutExpired:
-                    p.kill()
+    pd.testing.assert_frame_equal(
+        merged(tmp_path / "store"), merged(reference_store), check_exact=True
+    )
 
 
 def test_duration_is_frozen_into_layers_once():

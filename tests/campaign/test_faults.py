@@ -10,15 +10,12 @@ import os
 import signal
 import time
 
-import numpy as np
 import pandas as pd
 import pyarrow.parquet as pq
 import pytest
 
-from sweepctl.plan import ReplicaSpec
-from sweepctl.recipe import Point
-from sweepctl.worker import compute_replica
 from tests.campaign.helpers import (
+    assert_row_recomputes,
     cli,
     events,
     kill_pids,
@@ -154,16 +151,4 @@ def test_checkpointed_replica_resumes_bit_identically(tmp_path, launched):
     row = pq.read_table(sorted((store / "replicas").glob("part-*.parquet"))[0]).to_pylist()[0]
     assert row["resumed_at_layer"] > 0  # it did continue from the checkpoint
     assert not list((store / "checkpoints").rglob("*.ckpt"))  # removed once stored
-    spec = ReplicaSpec(
-        point=Point(0.0, 0.0, 1e-6, 8, 0.1),
-        replica=0,
-        entropy=int(row["entropy"], 16),
-        layers=400_000,
-        warmup=32,
-        strips=4,
-        checkpoint="",
-        checkpoint_seconds=1e9,
-    )
-    fresh = compute_replica(spec, use_checkpoint=False)
-    assert np.asarray(fresh.gamma_strips).tobytes() == np.asarray(row["gamma_strips"]).tobytes()
-    assert np.asarray(fresh.exponents).tobytes() == np.asarray(row["exponents"]).tobytes()
+    assert_row_recomputes(row)  # bit-identical to an uninterrupted replica

@@ -2,15 +2,12 @@
 
 from __future__ import annotations
 
-import json
 import stat
-import subprocess
-import sys
 
 import pytest
 
 from sweepctl.cluster import ensure_certificates, make_security
-from tests.campaign.helpers import wait_until
+from tests.campaign.helpers import dask_cluster
 
 
 @pytest.fixture
@@ -18,56 +15,9 @@ def tls_scheduler(tmp_path):
     store = tmp_path / "store"
     store.mkdir()
     f = ensure_certificates(store)
-    sched_file = tmp_path / "scheduler.json"
     tls = ["--tls-ca-file", str(f["ca"]), "--tls-cert", str(f["cert"]), "--tls-key", str(f["key"])]
-    sched = subprocess.Popen(
-        [
-            sys.executable,
-            "-m",
-            "distributed.cli.dask_scheduler",
-            "--protocol",
-            "tls",
-            "--host",
-            "127.0.0.1",
-            "--port",
-            "0",
-            "--no-dashboard",
-            "--scheduler-file",
-            str(sched_file),
-            *tls,
-        ],
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.DEVNULL,
-    )
-    worker = None
-    try:
-        wait_until(lambda: sched_file.exists() and sched_file.stat().st_size > 0, 60, "scheduler")
-        worker = subprocess.Popen(
-            [
-                sys.executable,
-                "-m",
-                "distributed.cli.dask_worker",
-                "--scheduler-file",
-                str(sched_file),
-                "--nthreads",
-                "1",
-                "--host",
-                "127.0.0.1",
-                "--no-dashboard",
-                *tls,
-            ],
-            stdout=subprocess.DEVNULL,
-            stderr=subprocess.DEVNULL,
-        )
-        yield store, json.loads(sched_file.read_text())["address"]
-    finally:
-        for p in (worker, sched):
-            if p is not None and p.poll() is None:
-                p.terminate()
-                try:
-                    p.wait(timeout=30)
-                except subprocess.TimeoutExpired:
-                    p.kill()
+    with dask_cluster(tmp_path / "scheduler.json", tls, workers=1) as address:
+        yield store, address
 
 
 def test_keys_are_private(tmp_path):

@@ -12,7 +12,15 @@ import pandas as pd
 import pyarrow.parquet as pq
 import pytest
 
-from tests.campaign.helpers import cli, events, merged, start_cli, wait_until, write_recipe
+from tests.campaign.helpers import (
+    assert_row_recomputes,
+    cli,
+    events,
+    merged,
+    start_cli,
+    wait_until,
+    write_recipe,
+)
 
 ROOT = Path(__file__).resolve().parents[2]
 PY_BIN = str(Path(sys.executable).parent)
@@ -157,24 +165,7 @@ def test_worker_job_hits_walltime_mid_replica(tmp_path):
     assert proc.returncode == 0, proc.stdout + proc.stderr
     row = pq.read_table(store / "replicas").to_pylist()[0]
     assert row["resumed_at_layer"] > 0
-    from sweepctl.plan import ReplicaSpec
-    from sweepctl.recipe import Point
-    from sweepctl.worker import compute_replica
-
-    spec = ReplicaSpec(
-        point=Point(0.0, 0.0, 1e-6, 8, 0.1),
-        replica=0,
-        entropy=int(row["entropy"], 16),
-        layers=10_000_000,
-        warmup=32,
-        strips=4,
-        checkpoint="",
-        checkpoint_seconds=1e9,
-    )
-    import numpy as np
-
-    fresh = compute_replica(spec, use_checkpoint=False)
-    assert np.asarray(fresh.gamma_strips).tobytes() == np.asarray(row["gamma_strips"]).tobytes()
+    assert_row_recomputes(row)  # bit-identical to an uninterrupted replica
     acct = (
         Path("/tmp/slurm/log/jobcomp.log").read_text()
         if Path("/tmp/slurm/log/jobcomp.log").exists()
