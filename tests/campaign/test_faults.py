@@ -26,12 +26,11 @@ from tests.campaign.helpers import (
     write_recipe,
 )
 
-FAULT = {
+FAULT = {  # ~20 s of work on 2 workers: kills land mid-campaign
     "axes": {"widths": [2, 3, 4]},
-    "precision": {"target": 0.002, "max_layers": 2_000_000},
-    "replica": {"layers": 100_000, "checkpoint_seconds": 0.3},
+    "precision": {"target": 0.001, "max_layers": 6_000_000},
+    "replica": {"layers": 300_000, "checkpoint_seconds": 0.3},
 }
-
 
 def finished(store) -> int:
     return sum(1 for e in events(store) if e.get("event") == "finished")
