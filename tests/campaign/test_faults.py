@@ -32,6 +32,7 @@ FAULT = {  # ~20 s of work on 2 workers: kills land mid-campaign
     "replica": {"layers": 300_000, "checkpoint_seconds": 0.3},
 }
 
+
 def finished(store) -> int:
     return sum(1 for e in events(store) if e.get("event") == "finished")
 
