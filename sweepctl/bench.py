@@ -20,7 +20,6 @@ from threadpoolctl import threadpool_limits
 
 from sweepctl import __version__
 from sweepctl.errors import SweepctlError
-from sweepctl.kernel import NetworkModel, StripState
 
 __all__ = [
     "BenchRow",
@@ -58,6 +57,9 @@ def bench_widths(
     A short calibration run sizes the timed run; compilation and warm-up are
     excluded. The BLAS is limited to one thread for the measurement.
     """
+    # Imported here: the driver needs only the stored calibration, not the compiled kernel.
+    from sweepctl.kernel import NetworkModel, StripState
+
     rows = []
     with threadpool_limits(1):
         for n in widths:
