@@ -521,6 +521,265 @@ def audit(
     console.print("audit passed")
 
 
+class _StepDisplay:
+    """A bar per stage on a terminal; a plain line every 10 s (and at the end) otherwise."""
+
+    def __init__(self) -> None:
+        self.tty = console.is_terminal
+        self.progress = None
+        self.tasks: dict[str, object] = {}
+        self.last = 0.0
+
+    def __call__(self, stage: str, done: int, total: int) -> None:
+        import time
+
+        if self.tty:
+            if self.progress is None:
+                from rich.progress import BarColumn, Progress, TextColumn, TimeRemainingColumn
+
+                self.progress = Progress(
+                    TextColumn("{task.description}"),
+                    BarColumn(),
+                    TextColumn("{task.completed}/{task.total}"),
+                    TimeRemainingColumn(),
+                    console=console,
+                    transient=True,
+                )
+                self.progress.start()
+            if stage not in self.tasks:
+                self.tasks[stage] = self.progress.add_task(stage, total=total)
+            self.progress.update(self.tasks[stage], completed=done, total=total)
+        elif done == total or time.monotonic() - self.last >= 10.0:
+            self.last = time.monotonic()
+            console.print(f"{time.strftime('%H:%M:%S')} {stage} {done}/{total}", highlight=False)
+
+    def close(self) -> None:
+        if self.progress is not None:
+            self.progress.stop()
+            self.progress = None
+
+
+def _orders(text: str, option: str):
+    from sweepctl.fss.model import Orders
+
+    try:
+        return Orders.parse(text)
+    except ValueError as exc:
+        raise UserError(f"{option}: {exc}") from None
+
+
+def _disorder(text: str | None):
+    if text is None:
+        return None
+    try:
+        pb, po = (float(v) for v in text.split(","))
+    except ValueError:
+        raise UserError(
+            f"--disorder: {text!r} is not P_BLOCK,P_OPEN; write e.g. --disorder 0.1,0.1"
+        ) from None
+    return pb, po
+
+
+OrdersOpt = Annotated[
+    str,
+    typer.Option(
+        "--orders",
+        help="Expansion orders n_R,n_I,m_R,m_I of F (relevant, irrelevant) and u_0, u_1.",
+    ),
+]
+FitWorkersOpt = Annotated[
+    int | None, typer.Option("--workers", min=1, help="Local worker processes for resampling.")
+]
+
+
+def _fit_request(orders, n_min, symmetric, correction, disorder, epsilon, resamples, seed):
+    from sweepctl.analysis import FitRequest
+
+    if correction not in ("power", "log"):
+        raise UserError(f"--correction: {correction!r} is not power or log; choose one")
+    return FitRequest(
+        orders=_orders(orders, "--orders"),
+        n_min=n_min,
+        symmetric=symmetric,
+        correction=correction,
+        disorder=_disorder(disorder),
+        epsilon=epsilon,
+        resamples=resamples,
+        seed=seed,
+    )
+
+
+def _print_epsilon_check(df) -> None:
+    """With several ε values: per width, is Γ flat in ε, and which range to use."""
+    from sweepctl.fss.regularisation import epsilon_check
+
+    rows, ranges = epsilon_check(df)
+    if not rows:
+        return
+    t = Table(title="regularisation: is Γ flat in ε? (χ² about the weighted mean, per width)")
+    for c in ("p_block", "p_open", "N", "ε values", "χ²", "dof", "p", "flat"):
+        t.add_column(c)
+    for r in rows:
+        t.add_row(
+            f"{r.p_block:g}",
+            f"{r.p_open:g}",
+            str(r.N),
+            ", ".join(f"{e:g}" for e in r.epsilons),
+            f"{r.chi2:.2f}",
+            str(r.dof),
+            f"{r.p_value:.3f}",
+            "yes" if r.flat else "no",
+        )
+    console.print(t)
+    for (pb, po), (lo, hi) in ranges.items():
+        console.print(f"p_block={pb:g}, p_open={po:g}: recommended ε range [{lo:g}, {hi:g}]")
+
+
+@app.command("fit")
+def fit_cmd(
+    source: Annotated[Path, typer.Argument(help="A store, or a points table (CSV/Parquet).")],
+    orders: OrdersOpt = "2,1,1,0",
+    n_min: Annotated[
+        int | None, typer.Option("--n-min", help="Smallest width used (default: all).")
+    ] = None,
+    symmetric: Annotated[
+        bool | None,
+        typer.Option(
+            "--symmetric/--general",
+            help="Duality-symmetric form (x_c = 0); default when p_block = p_open.",
+        ),
+    ] = None,
+    correction: Annotated[
+        str, typer.Option("--correction", help="Irrelevant field: power (N^y) or log (1/ln N).")
+    ] = "power",
+    disorder: Annotated[
+        str | None, typer.Option("--disorder", help="Slice P_BLOCK,P_OPEN of the table.")
+    ] = None,
+    epsilon: Annotated[float | None, typer.Option("--epsilon", help="Slice ε.")] = None,
+    resamples: Annotated[
+        int, typer.Option("--resamples", min=20, help="Gaussian resamples for the CIs.")
+    ] = 200,
+    seed: Annotated[int, typer.Option("--seed", min=0, help="Seed of the resampling.")] = 0,
+    json_out: Annotated[Path | None, typer.Option("--json", help="Write the fit as JSON.")] = None,
+    scan_: Annotated[
+        bool, typer.Option("--scan", help="Compare all orders and N_min windows.")
+    ] = False,
+    max_orders: Annotated[
+        str, typer.Option("--max-orders", help="Largest orders of the scan.")
+    ] = "3,1,3,1",
+    workers: FitWorkersOpt = None,
+    scheduler: Annotated[
+        str | None, typer.Option("--scheduler", help="Address of a running Dask scheduler.")
+    ] = None,
+    scheduler_file: Annotated[
+        Path | None, typer.Option("--scheduler-file", help="Dask scheduler file.")
+    ] = None,
+) -> None:
+    """Finite-size-scaling fit of Γ(x, N): ν, y, x_c, Γ_c with 95 % intervals."""
+    from sweepctl import analysis
+    from sweepctl.report import fit_summary, fit_table
+
+    req = _fit_request(orders, n_min, symmetric, correction, disorder, epsilon, resamples, seed)
+    mx = _orders(max_orders, "--max-orders")
+    df = analysis.load(source)
+    _print_epsilon_check(df)
+    show = _StepDisplay()
+    try:
+        if scan_:
+            sl, rows, choice = analysis.scan_source(df, req, mx, progress=show)
+            show.close()
+            t = Table(title=f"scan — {sl.label()}; ν interval linearised (±1.96σ)")
+            for c in ("orders", "form", "N_min", "χ²/dof", "p", "ν", "ν 95 %", ""):
+                t.add_column(c)
+            for r in rows:
+                kind = ("sym" if r.model.symmetric else "gen") + (
+                    "" if not r.model.has_irrelevant else f" {r.model.correction}"
+                )
+                if r.fit is None:
+                    t.add_row(
+                        r.model.orders.label(), kind, str(r.n_min), "—", "—", "—", "—", "failed"
+                    )
+                    continue
+                lo, hi = r.nu_ci()
+                mark = "◀ stable choice" if r is choice else ""
+                t.add_row(
+                    r.model.orders.label(),
+                    kind,
+                    str(r.n_min),
+                    f"{r.fit.chi2 / r.fit.dof:.2f}",
+                    f"{r.fit.p_value:.3f}",
+                    f"{r.fit.values()['nu']:.4f}",
+                    f"[{lo:.3f}, {hi:.3f}]",
+                    mark,
+                )
+            console.print(t)
+            if choice is None:
+                console.print(
+                    "no stable choice: no power-law form has p ≥ 0.1 with ν agreeing across "
+                    "N_min; raise --max-orders or add widths"
+                )
+                return
+            console.print(
+                f"stable choice: {choice.model.describe()}, N_min = {choice.n_min}; "
+                "refitting it with resampled intervals"
+            )
+            req.orders, req.n_min = choice.model.orders, choice.n_min
+            req.correction = choice.model.correction
+        with analysis.dask_mapper(
+            workers, scheduler, str(scheduler_file) if scheduler_file else None, progress=show
+        ) as mapper:
+            sl, _, best, cis = analysis.fit_source(df, req, mapper=mapper)
+    finally:
+        show.close()
+    t = Table(title=f"fit — {sl.label()}")
+    for c in ("quantity", "value", "95 % interval"):
+        t.add_column(c)
+    for row in fit_table(best, cis):
+        t.add_row(*row)
+    console.print(t)
+    console.print(
+        f"{best.model.describe()}, N ≥ {best.n_min}, {best.points_used} points: "
+        f"χ² = {best.chi2:.2f}, dof = {best.dof}, p = {best.p_value:.3f}"
+        + (f"; {cis.failed} of {cis.resamples} refits failed" if cis.failed else ""),
+        highlight=False,
+    )
+    if best.p_value < 0.1:
+        console.print("warning: p < 0.1 — this form does not describe the data; try --scan")
+    if json_out is not None:
+        json_out.write_text(json.dumps(fit_summary(best, cis), indent=2) + "\n")
+        console.print(f"wrote {json_out}")
+
+
+@app.command("report")
+def report_cmd(
+    store: Annotated[Path, typer.Argument(help="Campaign store directory.")],
+    out: Annotated[Path, typer.Option("--out", help="Directory for the report files.")],
+    orders: OrdersOpt = "2,1,1,0",
+    n_min: Annotated[int | None, typer.Option("--n-min", help="Smallest width used.")] = None,
+    correction: Annotated[str, typer.Option("--correction", help="power or log.")] = "power",
+    resamples: Annotated[int, typer.Option("--resamples", min=20)] = 200,
+    seed: Annotated[int, typer.Option("--seed", min=0)] = 0,
+    workers: FitWorkersOpt = None,
+    scheduler: Annotated[str | None, typer.Option("--scheduler")] = None,
+    scheduler_file: Annotated[Path | None, typer.Option("--scheduler-file")] = None,
+) -> None:
+    """Fits, plots (PNG and PDF) and a Markdown/HTML summary with the provenance."""
+    from sweepctl import analysis
+
+    req = _fit_request(orders, n_min, None, correction, None, None, resamples, seed)
+    if not (store / "campaign.json").exists():
+        raise UserError(f"{store}: not a store (no campaign.json); give the --store of a run")
+    show = _StepDisplay()
+    try:
+        with analysis.dask_mapper(
+            workers, scheduler, str(scheduler_file) if scheduler_file else None, progress=show
+        ) as mapper:
+            md, html_path, plots = analysis.build_report(store, out, req, mapper, show)
+    finally:
+        show.close()
+    console.print(f"wrote {md}, {html_path} and {len(plots)} plot files in {out}")
+
+
 def main() -> None:
     """Console-script entry point: user errors become one line and exit code 2.
 

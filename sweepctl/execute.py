@@ -16,6 +16,7 @@ import os
 import signal
 import threading
 import time
+import warnings
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
@@ -211,6 +212,9 @@ class Connection:
                 "distributed.admin.system-monitor.interval": "5s",
             }
         )
+        # The scheduler's small HTTP server (health routes; loopback here) falls back to a
+        # free port when 8787 is taken by another campaign: not worth a warning.
+        warnings.filterwarnings("ignore", message="Port .* is already in use", category=UserWarning)
         self.cluster = None
         sec = {"security": options.security} if options.security is not None else {}
         if options.scheduler_file:

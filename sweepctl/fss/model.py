@@ -1,0 +1,160 @@
+"""Scaling forms for the finite-size-scaling fit of Γ(x, N).
+
+The form is that of Slevin and Ohtsuki [1]_:
+
+.. math::
+
+    Γ = F(ψ_0, ψ_1),\\quad ψ_0 = u_0(w) N^{1/ν},\\quad ψ_1 = u_1(w) N^{y},\\quad w = x - x_c,
+
+with ``F`` a double polynomial :math:`\\sum_{i \\le n_R,\\, j \\le n_I} f_{ij} ψ_0^i ψ_1^j`,
+the relevant field :math:`u_0 = w + \\sum_{k=2}^{m_R} a_k w^k` and the irrelevant field
+:math:`u_1 = 1 + \\sum_{k=1}^{m_I} b_k w^k` (the leading coefficients are fixed to one;
+the overall scales live in ``f``).  ``y < 0`` is the leading irrelevant exponent.
+
+*Symmetric* forms encode the duality x → −x of networks with p_block = p_open
+(REFERENCES.md, [derived]): x_c = 0, u_0 odd and u_1 even in x, hence F even in ψ_0.
+
+The *logarithmic* variant replaces ``N^y`` by ``1/ln N`` (no ``y``), a marginal correction
+offered for comparison against the power law.
+
+``F`` is linear in ``f``; the fit profiles it out by weighted linear least squares for each
+trial of the nonlinear parameters (variable projection, Golub and Pereyra [2]_).
+
+References
+----------
+.. [1] K. Slevin and T. Ohtsuki, "Corrections to scaling at the Anderson transition",
+   Phys. Rev. Lett. 82, 382 (1999).
+.. [2] G. H. Golub and V. Pereyra, "The differentiation of pseudo-inverses and nonlinear
+   least squares problems whose variables separate", SIAM J. Numer. Anal. 10, 413 (1973).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+CORRECTIONS = ("power", "log")
+
+
+@dataclass(frozen=True)
+class Orders:
+    """Expansion orders: F in ψ_0 (n_R) and ψ_1 (n_I), u_0 in w (m_R), u_1 in w (m_I)."""
+
+    n_R: int = 2
+    n_I: int = 1
+    m_R: int = 1
+    m_I: int = 0
+
+    def __post_init__(self) -> None:
+        if self.n_R < 1 or self.n_I < 0 or self.m_R < 1 or self.m_I < 0:
+            raise ValueError(f"orders {self.label()}: need n_R >= 1, n_I >= 0, m_R >= 1, m_I >= 0")
+
+    def label(self) -> str:
+        return f"{self.n_R},{self.n_I},{self.m_R},{self.m_I}"
+
+    @classmethod
+    def parse(cls, text: str) -> Orders:
+        """``"nR,nI,mR,mI"`` → :class:`Orders` (ValueError with the reason)."""
+        parts = [p.strip() for p in str(text).split(",")]
+        if len(parts) != 4 or not all(p.lstrip("-").isdigit() for p in parts):
+            raise ValueError(f"{text!r} is not four integers n_R,n_I,m_R,m_I (e.g. 2,1,1,0)")
+        return cls(*(int(p) for p in parts))
+
+
+@dataclass(frozen=True)
+class ScalingModel:
+    """One scaling form: orders, symmetry and the kind of irrelevant correction."""
+
+    orders: Orders = Orders()
+    symmetric: bool = False
+    correction: str = "power"
+
+    def __post_init__(self) -> None:
+        if self.correction not in CORRECTIONS:
+            raise ValueError(f"correction {self.correction!r}: use one of {CORRECTIONS}")
+
+    # -- parameter layout -----------------------------------------------------------
+    @property
+    def has_irrelevant(self) -> bool:
+        return self.orders.n_I > 0
+
+    @property
+    def has_y(self) -> bool:
+        return self.has_irrelevant and self.correction == "power"
+
+    def f_powers(self) -> list[tuple[int, int]]:
+        """(i, j) of the linear coefficients f_ij, in column order."""
+        i_s = range(0, self.orders.n_R + 1, 2 if self.symmetric else 1)
+        return [(i, j) for j in range(self.orders.n_I + 1) for i in i_s]
+
+    def a_powers(self) -> list[int]:
+        """Powers k ≥ 2 of w in u_0 (odd only when symmetric)."""
+        return [k for k in range(2, self.orders.m_R + 1) if not (self.symmetric and k % 2 == 0)]
+
+    def b_powers(self) -> list[int]:
+        """Powers k ≥ 1 of w in u_1 (even only when symmetric); none without ψ_1."""
+        if not self.has_irrelevant:
+            return []
+        return [k for k in range(1, self.orders.m_I + 1) if not (self.symmetric and k % 2)]
+
+    def nonlinear_names(self) -> list[str]:
+        names = ["nu"]
+        if self.has_y:
+            names.append("y")
+        if not self.symmetric:
+            names.append("x_c")
+        names += [f"a{k}" for k in self.a_powers()]
+        names += [f"b{k}" for k in self.b_powers()]
+        return names
+
+    @property
+    def n_params(self) -> int:
+        return len(self.nonlinear_names()) + len(self.f_powers())
+
+    def describe(self) -> str:
+        kind = "symmetric" if self.symmetric else "general"
+        corr = "" if not self.has_irrelevant else f", {self.correction} correction"
+        return f"orders {self.orders.label()} ({kind}{corr})"
+
+    # -- evaluation -----------------------------------------------------------------
+    def unpack(self, theta: np.ndarray) -> dict[str, float]:
+        return dict(zip(self.nonlinear_names(), map(float, theta), strict=True))
+
+    def fields(
+        self, theta: np.ndarray, x: np.ndarray, n: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """Scaling variables ψ_0 and ψ_1 at the points (ψ_1 = 0 without a correction)."""
+        p = self.unpack(theta)
+        w = x - p.get("x_c", 0.0)
+        u0 = w.copy()
+        for k in self.a_powers():
+            u0 = u0 + p[f"a{k}"] * w**k
+        psi0 = u0 * n ** (1.0 / p["nu"])
+        if not self.has_irrelevant:
+            return psi0, np.zeros_like(psi0)
+        u1 = np.ones_like(w)
+        for k in self.b_powers():
+            u1 = u1 + p[f"b{k}"] * w**k
+        scale = n ** p["y"] if self.correction == "power" else 1.0 / np.log(n)
+        return psi0, u1 * scale
+
+    def design(self, theta: np.ndarray, x: np.ndarray, n: np.ndarray) -> np.ndarray:
+        """Columns ψ_0^i ψ_1^j for the f_ij of :meth:`f_powers`."""
+        psi0, psi1 = self.fields(theta, x, n)
+        return np.stack([psi0**i * psi1**j for i, j in self.f_powers()], axis=1)
+
+    def evaluate(
+        self, theta: np.ndarray, f: np.ndarray, x: np.ndarray, n: np.ndarray
+    ) -> np.ndarray:
+        """Γ of the scaling form at (x, N)."""
+        return self.design(theta, np.asarray(x, float), np.asarray(n, float)) @ f
+
+    def relevant_part(
+        self, theta: np.ndarray, f: np.ndarray, x: np.ndarray, n: np.ndarray
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """(ψ_0, F(ψ_0, 0)) — the collapse curve with the irrelevant field removed."""
+        psi0, _ = self.fields(theta, np.asarray(x, float), np.asarray(n, float))
+        cols = [(i, j) for i, j in self.f_powers()]
+        val = sum(f[c] * psi0**i for c, (i, j) in enumerate(cols) if j == 0)
+        return psi0, val

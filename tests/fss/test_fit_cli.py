@@ -1,0 +1,179 @@
+"""`sweepctl fit` on points tables: JSON fields, Dask resampling, and bad input."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+from sweepctl.fss import fit, resampled_intervals
+from tests.campaign.helpers import cli
+from tests.fss import synthetic as syn
+
+
+def _table(data, **extra) -> pd.DataFrame:
+    df = pd.DataFrame(
+        {"N": data.N.astype(int), "x": data.x, "Gamma": data.Gamma, "Gamma_err": data.Gamma_err}
+    )
+    for k, v in extra.items():
+        df[k] = v
+    return df
+
+
+@pytest.fixture(scope="module")
+def points_csv(tmp_path_factory):
+    path = tmp_path_factory.mktemp("fitcli") / "points.csv"
+    _table(syn.make(5)).to_csv(path, index=False)  # invented data (tests/fss/synthetic.py)
+    return path
+
+
+def test_fit_json_on_dask_matches_in_process_resampling(points_csv, tmp_path):
+    out = tmp_path / "fit.json"
+    proc = cli(
+        "fit", points_csv, "--workers", "2", "--resamples", "100", "--seed", "4", "--json", out
+    )
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    res = json.loads(out.read_text())
+    for key in (
+        "nu",
+        "nu_ci",
+        "y",
+        "y_ci",
+        "x_c",
+        "x_c_ci",
+        "Gamma_c",
+        "Gamma_c_ci",
+        "chi2",
+        "dof",
+        "p_value",
+        "orders",
+        "n_min",
+        "points_used",
+    ):
+        assert key in res, key
+    assert res["points_used"] == 55 and res["dof"] == 55 - 9 and res["n_min"] == 4
+    assert res["orders"] == {"n_R": 2, "n_I": 1, "m_R": 1, "m_I": 0}
+    # goodness of fit is scipy's χ² tail probability
+    assert res["p_value"] == stats.chi2.sf(res["chi2"], res["dof"])
+    # the same seeds give the same intervals in this process, without Dask
+    data = syn.make(5)
+    best = fit(data, syn.GENERAL)
+    cis = resampled_intervals(data, best, resamples=100, seed=4)
+    for q in ("nu", "y", "x_c", "Gamma_c"):
+        assert res[f"{q}_ci"] == pytest.approx(list(cis.bounds[q]), rel=1e-9), q
+        assert res[f"{q}_ci"][0] <= res[q] <= res[f"{q}_ci"][1]
+    assert "resampling" in proc.stdout
+
+
+def test_scan_marks_a_stable_choice(points_csv):
+    proc = cli(
+        "fit",
+        points_csv,
+        "--scan",
+        "--max-orders",
+        "2,1,2,0",
+        "--workers",
+        "1",
+        "--resamples",
+        "40",
+    )
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    assert "stable choice" in proc.stdout and "◀" in proc.stdout
+    assert "log" in proc.stdout  # the logarithmic variant is listed for comparison
+
+
+def _write(tmp_path, df: pd.DataFrame, name="bad.csv"):
+    p = tmp_path / name
+    df.to_csv(p, index=False)
+    return p
+
+
+def _bad_cases(tmp_path):
+    good = _table(syn.make(5))
+    few = _table(syn.make(5, widths=(4, 8, 16))).iloc[[0, 1, 11, 12, 22, 23]]
+    two_widths = _table(syn.make(5, widths=(8, 16)))
+    nan = good.copy()
+    nan.loc[3, "Gamma"] = np.nan
+    zero = good.copy()
+    zero.loc[7, "Gamma_err"] = 0.0
+    neg = good.copy()
+    neg.loc[9, "Gamma_err"] = -1e-3
+    text = good.copy().astype({"Gamma": str})
+    text.loc[0, "Gamma"] = "abc"
+    slices = pd.concat(
+        [_table(syn.make(5), p_block=0.0, p_open=0.0), _table(syn.make(6), p_block=0.1, p_open=0.1)]
+    )
+    (tmp_path / "empty").mkdir()
+    (tmp_path / "t.txt").write_text("N x\n")
+    return {
+        "missing column": ([_write(tmp_path, good.drop(columns="Gamma_err"))], "Gamma_err"),
+        "zero error": ([_write(tmp_path, zero, "zero.csv")], "Gamma_err = 0"),
+        "negative error": ([_write(tmp_path, neg, "neg.csv")], "Gamma_err = -0.001"),
+        "NaN Gamma": ([_write(tmp_path, nan, "nan.csv")], "Gamma is not a finite"),
+        "not numeric": ([_write(tmp_path, text, "text.csv")], "not numeric"),
+        "fewer points than parameters": ([_write(tmp_path, few, "few.csv")], "points_used = 6"),
+        "two widths with irrelevant field": (
+            [_write(tmp_path, two_widths, "two.csv")],
+            "at least 3 widths",
+        ),
+        "no such file": ([tmp_path / "nothere.csv"], "no such file"),
+        "not a store": ([tmp_path / "empty"], "not a store"),
+        "unknown table type": ([tmp_path / "t.txt"], "unknown table type"),
+        "bad orders": ([_write(tmp_path, good, "g.csv"), "--orders", "2,1"], "--orders"),
+        "orders below range": (
+            [_write(tmp_path, good, "g.csv"), "--orders", "0,1,1,0"],
+            "n_R >= 1",
+        ),
+        "ambiguous slice": ([_write(tmp_path, slices, "sl.csv")], "--disorder"),
+        "absent slice": (
+            [_write(tmp_path, slices, "sl.csv"), "--disorder", "0.2,0.2"],
+            "not in the table",
+        ),
+        "n-min not a width": ([_write(tmp_path, good, "g.csv"), "--n-min", "5"], "--n-min 5"),
+        "bad correction": (
+            [_write(tmp_path, good, "g.csv"), "--correction", "exp"],
+            "--correction",
+        ),
+        "symmetric on asymmetric": (
+            [
+                _write(tmp_path, _table(syn.make(5), p_block=0.2, p_open=0.1), "asym.csv"),
+                "--symmetric",
+            ],
+            "not self-dual",
+        ),
+    }
+
+
+CASES = [
+    "missing column",
+    "zero error",
+    "negative error",
+    "NaN Gamma",
+    "not numeric",
+    "fewer points than parameters",
+    "two widths with irrelevant field",
+    "no such file",
+    "not a store",
+    "unknown table type",
+    "bad orders",
+    "orders below range",
+    "ambiguous slice",
+    "absent slice",
+    "n-min not a width",
+    "bad correction",
+    "symmetric on asymmetric",
+]
+
+
+@pytest.mark.parametrize("case", CASES)
+def test_bad_input_is_one_clear_line(case, tmp_path):
+    args, needle = _bad_cases(tmp_path)[case]
+    proc = cli("fit", *args, "--workers", "1", "--resamples", "20")
+    assert proc.returncode == 2, proc.stdout + proc.stderr
+    err = proc.stderr.strip()
+    assert "Traceback" not in proc.stderr + proc.stdout
+    assert len(err.splitlines()) == 1, err
+    assert err.startswith("error:") and needle in err, err
