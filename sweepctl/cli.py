@@ -702,6 +702,8 @@ def fit_cmd(
                     continue
                 lo, hi = r.nu_ci()
                 mark = "◀ stable choice" if r is choice else ""
+                if r.fit.at_bound:
+                    mark = f"{', '.join(r.fit.at_bound)} at bound"
                 t.add_row(
                     r.model.orders.label(),
                     kind,
@@ -745,6 +747,12 @@ def fit_cmd(
     )
     if best.p_value < 0.1:
         console.print("warning: p < 0.1 — this form does not describe the data; try --scan")
+    if best.at_bound:
+        console.print(
+            f"warning: {', '.join(best.at_bound)} ended on the bound of the search — the data "
+            "do not determine it (for y: the irrelevant field merges with the constant); "
+            "add widths or drop the irrelevant field (n_I = 0)"
+        )
     if json_out is not None:
         json_out.write_text(json.dumps(fit_summary(best, cis), indent=2) + "\n")
         console.print(f"wrote {json_out}")

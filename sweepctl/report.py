@@ -209,6 +209,7 @@ def fit_summary(best: Fit, cis: Intervals | None) -> dict:
         points_used=int(best.points_used),
         resamples=None if cis is None else cis.resamples,
         resamples_failed=None if cis is None else cis.failed,
+        at_bound=list(best.at_bound),
     )
     return out
 
@@ -274,6 +275,17 @@ def write_report(
                 )
             )
             blocks.append(("table", (["quantity", "value", "95 % interval"], fit_table(b, s.cis))))
+            if b.at_bound:
+                blocks.append(
+                    (
+                        "p",
+                        (
+                            f"Warning: {', '.join(b.at_bound)} ended on the bound of the search; "
+                            "the data do not determine it (add widths or drop the irrelevant "
+                            "field)."
+                        ),
+                    )
+                )
             if s.note:
                 blocks.append(("p", s.note))
         if s.nmin_rows:

@@ -88,6 +88,8 @@ class Fit:
     points_used: int
     #: linearised standard errors of the nonlinear parameters (from the projected Jacobian)
     theta_err: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    #: nonlinear parameters that ended on a bound of the search (not determined by the data)
+    at_bound: tuple[str, ...] = ()
 
     @property
     def p_value(self) -> float:
@@ -167,7 +169,8 @@ def starting_points(model: ScalingModel, data: ScalingData) -> list[np.ndarray]:
 
 def _solve(model, data, start, lo, hi):
     w = 1.0 / data.Gamma_err
-    start = np.clip(start, lo + 1e-9 * (np.abs(lo) + 1), hi - 1e-9 * (np.abs(hi) + 1))
+    pad = 1e-9 * (np.abs(np.where(np.isfinite(lo), lo, 0)) + 1)
+    start = np.clip(start, lo + pad, hi - pad)  # strictly inside, as trf requires
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
         res = optimize.least_squares(
@@ -235,7 +238,10 @@ def fit(
             err = np.sqrt(np.clip(np.diag(cov), 0, None))
         except np.linalg.LinAlgError:
             pass
+    tol = 1e-6 * (1 + np.abs(res.x))
+    on = (np.abs(res.x - lo) <= tol) | (np.abs(hi - res.x) <= tol)
     return Fit(
+        at_bound=tuple(n for n, b in zip(model.nonlinear_names(), on, strict=True) if b),
         model=model,
         theta=res.x,
         f=f,

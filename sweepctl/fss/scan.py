@@ -28,7 +28,8 @@ class ScanRow:
 
     @property
     def acceptable(self) -> bool:
-        return self.fit is not None and self.fit.p_value >= P_ACCEPT
+        """p ≥ 0.1 and no parameter pinned on a bound of the search (a degenerate fit)."""
+        return self.fit is not None and self.fit.p_value >= P_ACCEPT and not self.fit.at_bound
 
     def nu_ci(self) -> tuple[float, float]:
         """Linearised 95 % interval of ν (±1.96 σ from the projected Jacobian)."""
@@ -73,10 +74,9 @@ def scan(
     rows = []
     models = candidate_models(max_orders, symmetric, with_log)
     jobs = [(m, n) for m in models for n in widths]
+    need = {m: 3 if m.has_irrelevant else 2 for m in models}
+    jobs = [(m, n) for m, n in jobs if len([w for w in widths if w >= n]) >= need[m]]
     for k, (m, n_min) in enumerate(jobs):
-        need = 3 if m.has_irrelevant else 2
-        if len([w for w in widths if w >= n_min]) < need:
-            continue
         try:
             rows.append(ScanRow(m, n_min, fit(data, m, n_min=n_min)))
         except FitError as exc:
@@ -86,13 +86,19 @@ def scan(
     return rows
 
 
-def stable_choice(rows: list[ScanRow]) -> ScanRow | None:
-    """The lowest-order power-law model whose acceptable fits agree on ν across N_min.
+def _overlap(a: tuple[float, float], b: tuple[float, float]) -> bool:
+    return max(a[0], b[0]) <= min(a[1], b[1])
 
-    A model qualifies when it has an acceptable fit (p ≥ 0.1) and the linearised 95 %
-    intervals of ν of all its acceptable windows overlap pairwise; a model that can be
-    fitted at only one window qualifies on that one.  The returned row is the qualifying
-    model at its smallest acceptable N_min (the most data).
+
+def stable_choice(rows: list[ScanRow]) -> ScanRow | None:
+    """The lowest-order power-law model whose ν is stable from an acceptable N_min on.
+
+    For each model (fewest parameters first) take the smallest N_min such that every
+    window from it upwards is acceptable (p ≥ 0.1, no parameter on a bound — e.g. y → 0,
+    where the irrelevant field merges with the constant) and the linearised 95 % ν
+    intervals of those windows and of the next smaller window overlap pairwise (ν does
+    not move when the smallest widths are dropped).  The first model with such a window
+    is returned at that window.
     """
     by_model: dict[ScalingModel, list[ScanRow]] = {}
     for r in rows:
@@ -100,12 +106,16 @@ def stable_choice(rows: list[ScanRow]) -> ScanRow | None:
     for m in sorted(by_model, key=lambda m: (m.n_params, m.orders.label())):
         if m.correction != "power":
             continue
-        ok = sorted((r for r in by_model[m] if r.acceptable), key=lambda r: r.n_min)
-        if not ok:
-            continue
-        cis = [r.nu_ci() for r in ok]
-        if all(
-            max(a[0], b[0]) <= min(a[1], b[1]) for a, b in itertools.combinations(cis, 2)
-        ) and all(math.isfinite(c[0]) for c in cis):
-            return ok[0]
+        wins = sorted(by_model[m], key=lambda r: r.n_min)
+        for k, r in enumerate(wins):
+            upward = wins[k:]
+            if not all(w.acceptable for w in upward):
+                continue
+            group = upward + ([wins[k - 1]] if k > 0 and wins[k - 1].fit is not None else [])
+            cis = [w.nu_ci() for w in group]
+            if all(math.isfinite(c[0]) and math.isfinite(c[1]) for c in cis) and all(
+                _overlap(a, b) for a, b in itertools.combinations(cis, 2)
+            ):
+                return r
+            break  # a larger N_min would only drop the evidence of stability
     return None
