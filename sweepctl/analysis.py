@@ -39,6 +39,11 @@ class FitRequest:
     resamples: int = 200
     seed: int = 0
     level: float = 0.95
+    auto_orders: bool = False  # report: take the scan's stable choice per slice
+
+
+#: largest orders the report's automatic scan tries
+REPORT_MAX_ORDERS = Orders(4, 1, 3, 1)
 
 
 @contextlib.contextmanager
@@ -165,7 +170,7 @@ def provenance(store_dir: Path) -> list[tuple[str, str]]:
         ("layers", f"{sum(t.column('layers').to_pylist()):,}"),
         ("CPU-hours", f"{cpu:.3f}"),
         ("strips per replica", str(frozen.strips)),
-        ("warm-up layers", str(frozen.warmup)),
+        ("warm-up layers", "max(5N, 32)" if frozen.warmup is None else str(frozen.warmup)),
         ("precision target", f"{campaign['target']:g}"),
     ]
 
@@ -189,20 +194,33 @@ def build_report(
     all_plots: list[Path] = []
     for k, sl in enumerate(slices(df)):
         data = select(df, sl)
-        model = ScalingModel(
-            req.orders,
-            symmetric=sl.symmetric if req.symmetric is None else req.symmetric and sl.symmetric,
-            correction=req.correction,
-        )
+        sym = sl.symmetric if req.symmetric is None else req.symmetric and sl.symmetric
+        model = ScalingModel(req.orders, symmetric=sym, correction=req.correction)
+        n_min = req.n_min
         best = cis = None
         note = ""
+        if req.auto_orders:
+            # the practitioner's choice: the scan's stable form, else the default orders
+            choice = stable_choice(scan(data, REPORT_MAX_ORDERS, symmetric=sym, with_log=False))
+            if choice is not None:
+                model, n_min = choice.model, choice.n_min
+                note = (
+                    f"Form chosen by the scan over orders up to {REPORT_MAX_ORDERS.label()} "
+                    "and every N_min (fewest parameters with p ≥ 0.1 and ν unchanged when "
+                    "the smallest widths are dropped)."
+                )
+            else:
+                note = (
+                    f"The scan over orders up to {REPORT_MAX_ORDERS.label()} found no stable "
+                    f"form; shown: the default orders {req.orders.label()} (treat with care)."
+                )
         try:
-            best = fit(data, model, n_min=req.n_min)
+            best = fit(data, model, n_min=n_min)
             cis = resampled_intervals(
                 data, best, resamples=req.resamples, seed=req.seed, mapper=mapper
             )
         except FitError as exc:
-            note = str(exc)
+            note = f"{note} No fit: {exc}".strip()
         # ν against N_min for the requested form and, for comparison, without its
         # irrelevant field (which can be fitted on one width fewer)
         forms = [model]

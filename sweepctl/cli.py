@@ -762,7 +762,13 @@ def fit_cmd(
 def report_cmd(
     store: Annotated[Path, typer.Argument(help="Campaign store directory.")],
     out: Annotated[Path, typer.Option("--out", help="Directory for the report files.")],
-    orders: OrdersOpt = "2,1,1,0",
+    orders: Annotated[
+        str | None,
+        typer.Option(
+            "--orders",
+            help="Orders n_R,n_I,m_R,m_I for every slice (default: the scan's stable choice).",
+        ),
+    ] = None,
     n_min: Annotated[int | None, typer.Option("--n-min", help="Smallest width used.")] = None,
     correction: Annotated[str, typer.Option("--correction", help="power or log.")] = "power",
     resamples: Annotated[int, typer.Option("--resamples", min=20)] = 200,
@@ -774,7 +780,8 @@ def report_cmd(
     """Fits, plots (PNG and PDF) and a Markdown/HTML summary with the provenance."""
     from sweepctl import analysis
 
-    req = _fit_request(orders, n_min, None, correction, None, None, resamples, seed)
+    req = _fit_request(orders or "2,1,1,0", n_min, None, correction, None, None, resamples, seed)
+    req.auto_orders = orders is None and n_min is None
     if not (store / "campaign.json").exists():
         raise UserError(f"{store}: not a store (no campaign.json); give the --store of a run")
     show = _StepDisplay()

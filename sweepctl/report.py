@@ -132,6 +132,9 @@ def plot_nu_vs_nmin(rows: list[ScanRow], out: Path, stem: str, title: str):
         hi = np.array([r.nu_ci()[1] for r in pts])
         ax.errorbar(n, nu, yerr=[nu - lo, hi - nu], fmt="o-", ms=4, capsize=3, label=m.describe())
     ax.set_xscale("log", base=2)
+    ticks = sorted({r.n_min for r in rows})
+    ax.set_xticks(ticks, [str(t) for t in ticks])
+    ax.minorticks_off()
     ax.set_xlabel("smallest width used, N_min")
     ax.set_ylabel("ν (95 % interval, linearised)")
     ax.set_title(title, fontsize=9)
@@ -249,7 +252,7 @@ def write_report(
     for s in slices:
         blocks.append(("h2", f"Fit: {s.label}"))
         if s.best is None:
-            blocks.append(("p", f"No fit: {s.note}"))
+            blocks.append(("p", s.note))
         else:
             b = s.best
             blocks.append(
