@@ -611,7 +611,7 @@ def _fit_request(orders, n_min, symmetric, correction, disorder, epsilon, resamp
 
 def _print_epsilon_check(df) -> None:
     """With several ε values: per width, is Γ flat in ε, and which range to use."""
-    from sweepctl.fss.regularisation import epsilon_check
+    from sweepctl.fss.regularisation import describe_range, epsilon_check
 
     rows, ranges = epsilon_check(df)
     if not rows:
@@ -632,7 +632,7 @@ def _print_epsilon_check(df) -> None:
         )
     console.print(t)
     for (pb, po), (lo, hi) in ranges.items():
-        console.print(f"p_block={pb:g}, p_open={po:g}: recommended ε range [{lo:g}, {hi:g}]")
+        console.print(describe_range(pb, po, lo, hi), highlight=False)
 
 
 @app.command("fit")

@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 
 from sweepctl.fss.fit import QUANTITIES, Fit, Intervals, ScalingData
-from sweepctl.fss.regularisation import FlatRow
+from sweepctl.fss.regularisation import FlatRow, describe_range
 from sweepctl.fss.scan import ScanRow
 
 LABELS = {"nu": "ν", "y": "y", "x_c": "x_c", "Gamma_c": "Γ_c"}
@@ -341,13 +341,7 @@ def write_report(
             )
         )
         for (pb, po), (lo, hi) in ranges.items():
-            blocks.append(
-                (
-                    "p",
-                    f"p_block={pb:g}, p_open={po:g}: recommended ε range "
-                    f"[{lo:g}, {hi:g}] (every width flat, p ≥ 0.05).",
-                )
-            )
+            blocks.append(("p", describe_range(pb, po, lo, hi) + "."))
         for p in eps_plot:
             if p.suffix == ".png":
                 blocks.append(("img", p.name))

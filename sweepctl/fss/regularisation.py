@@ -73,3 +73,14 @@ def epsilon_check(df: pd.DataFrame) -> tuple[list[FlatRow], dict]:
                 break
         ranges[(float(pb), float(po))] = (best[0], best[-1])
     return rows, ranges
+
+
+def describe_range(pb: float, po: float, lo: float, hi: float) -> str:
+    """One sentence on the recommended ε range of a disorder pair."""
+    head = f"p_block={pb:g}, p_open={po:g}: "
+    if lo == hi:
+        return head + (
+            f"only the smallest ε ({lo:g}) is recommended: Γ changes between it and the next "
+            "value for some width; add smaller ε values to show convergence"
+        )
+    return head + f"recommended ε range [{lo:g}, {hi:g}] (every width flat, p ≥ {P_FLAT:g})"
