@@ -272,6 +272,14 @@ class _RunDisplay:
             self._plain()
 
 
+SchedulerOpt = Annotated[
+    str | None, typer.Option("--scheduler", help="Address of a running Dask scheduler.")
+]
+SchedulerFileOpt = Annotated[
+    Path | None, typer.Option("--scheduler-file", help="Dask scheduler file.")
+]
+
+
 @app.command()
 def run(
     recipe: RecipeArg,
@@ -280,12 +288,8 @@ def run(
         int | None,
         typer.Option("--workers", min=1, help="Local worker processes (default: cores)."),
     ] = None,
-    scheduler: Annotated[
-        str | None, typer.Option("--scheduler", help="Address of a running Dask scheduler.")
-    ] = None,
-    scheduler_file: Annotated[
-        Path | None, typer.Option("--scheduler-file", help="Dask scheduler file.")
-    ] = None,
+    scheduler: SchedulerOpt = None,
+    scheduler_file: SchedulerFileOpt = None,
     calibration: CalibrationOpt = None,
     cluster: Annotated[
         str | None, typer.Option("--cluster", help="Batch profile (or slurm/pbs/sge/lsf).")
@@ -668,12 +672,8 @@ def fit_cmd(
         str, typer.Option("--max-orders", help="Largest orders of the scan.")
     ] = "3,1,3,1",
     workers: FitWorkersOpt = None,
-    scheduler: Annotated[
-        str | None, typer.Option("--scheduler", help="Address of a running Dask scheduler.")
-    ] = None,
-    scheduler_file: Annotated[
-        Path | None, typer.Option("--scheduler-file", help="Dask scheduler file.")
-    ] = None,
+    scheduler: SchedulerOpt = None,
+    scheduler_file: SchedulerFileOpt = None,
 ) -> None:
     """Finite-size-scaling fit of Γ(x, N): ν, y, x_c, Γ_c with 95 % intervals."""
     from sweepctl import analysis
@@ -774,8 +774,8 @@ def report_cmd(
     resamples: Annotated[int, typer.Option("--resamples", min=20)] = 200,
     seed: Annotated[int, typer.Option("--seed", min=0)] = 0,
     workers: FitWorkersOpt = None,
-    scheduler: Annotated[str | None, typer.Option("--scheduler")] = None,
-    scheduler_file: Annotated[Path | None, typer.Option("--scheduler-file")] = None,
+    scheduler: SchedulerOpt = None,
+    scheduler_file: SchedulerFileOpt = None,
 ) -> None:
     """Fits, plots (PNG and PDF) and a Markdown/HTML summary with the provenance."""
     from sweepctl import analysis
