@@ -185,14 +185,15 @@ def build_report(
     """Fit every slice of a store and write plots, report.md and report.html into ``out``."""
     from sweepctl import report as rp
 
-    df = load(store_dir)
     if not (Path(store_dir) / "campaign.json").exists():
         raise AnalysisError(f"{store_dir}: sweepctl report needs a store directory")
+    df = load(store_dir)
     out.mkdir(parents=True, exist_ok=True)
     prov = provenance(Path(store_dir))
     reports = []
     all_plots: list[Path] = []
-    for k, sl in enumerate(slices(df)):
+    todo = slices(df)
+    for k, sl in enumerate(todo):
         data = select(df, sl)
         sym = sl.symmetric if req.symmetric is None else req.symmetric and sl.symmetric
         model = ScalingModel(req.orders, symmetric=sym, correction=req.correction)
@@ -244,7 +245,7 @@ def build_report(
         reports.append(s)
         all_plots += s.plots
         if progress is not None:
-            progress("fitting slices", k + 1, len(slices(df)))
+            progress("fitting slices", k + 1, len(todo))
     flat_rows, ranges = epsilon_check(df)
     eps_plots: list[Path] = []
     if flat_rows:

@@ -181,17 +181,7 @@ def recompute(
     here = code_version()
     out = []
     for r in sorted(chosen, key=lambda r: (r["point_key"], r["replica"])):
-        pt = Point(r["p_block"], r["p_open"], r["epsilon"], r["width"], r["x"])
-        spec = ReplicaSpec(
-            point=pt,
-            replica=r["replica"],
-            entropy=int(r["entropy"], 16),
-            layers=r["layers"],
-            warmup=r["warmup"],
-            strips=r["strips"],
-            checkpoint="",
-            checkpoint_seconds=1e9,
-        )
+        spec = ReplicaSpec.from_row(r)
         from sweepctl.worker import compute_replica
 
         new = compute_replica(spec, use_checkpoint=False)

@@ -227,6 +227,20 @@ class ReplicaSpec:
     checkpoint: str
     checkpoint_seconds: float
 
+    @classmethod
+    def from_row(cls, row: dict) -> ReplicaSpec:
+        """The computation behind a stored replica row (no checkpoint), to recompute it."""
+        return cls(
+            point=Point(row["p_block"], row["p_open"], row["epsilon"], row["width"], row["x"]),
+            replica=row["replica"],
+            entropy=int(row["entropy"], 16),
+            layers=row["layers"],
+            warmup=row["warmup"],
+            strips=row["strips"],
+            checkpoint="",
+            checkpoint_seconds=1e9,
+        )
+
     @property
     def key(self) -> str:
         """Stable Dask key."""

@@ -103,7 +103,7 @@ def plot_collapse(data: ScalingData, best: Fit, out: Path, stem: str, title: str
             label=f"N = {w}",
         )
     grid = np.linspace(psi0.min(), psi0.max(), 300)
-    curve = sum(best.f[c] * grid**i for c, (i, j) in enumerate(best.model.f_powers()) if j == 0)
+    curve = best.model.relevant_curve(best.f, grid)
     ax.plot(grid, curve, "k-", lw=1.2, label="F(ψ₀, 0)")
     nu = best.values()["nu"]
     ax.set_xlabel(f"ψ₀ = u₀(x) N^(1/ν),  ν = {nu:.3f}")

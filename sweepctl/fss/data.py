@@ -33,18 +33,15 @@ def read_points(source: str | Path) -> pd.DataFrame:
         return df
     if not src.exists():
         raise FitError(f"{src}: no such file or store directory")
+    readers = {".csv": pd.read_csv, ".parquet": pd.read_parquet, ".pq": pd.read_parquet}
+    reader = readers.get(src.suffix.lower())
+    if reader is None:
+        raise FitError(
+            f"{src}: unknown table type {src.suffix!r}; give a .csv or .parquet file "
+            "or a store directory"
+        )
     try:
-        if src.suffix.lower() == ".csv":
-            df = pd.read_csv(src)
-        elif src.suffix.lower() in (".parquet", ".pq"):
-            df = pd.read_parquet(src)
-        else:
-            raise FitError(
-                f"{src}: unknown table type {src.suffix!r}; give a .csv or .parquet file "
-                "or a store directory"
-            )
-    except FitError:
-        raise
+        df = reader(src)
     except Exception as exc:  # any reader failure means the user's file is unreadable
         raise FitError(f"{src}: cannot read the table ({type(exc).__name__}: {exc})") from None
     missing = [c for c in REQUIRED if c not in df.columns]

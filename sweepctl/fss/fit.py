@@ -124,19 +124,20 @@ def _check(data: ScalingData, model: ScalingModel) -> None:
         )
 
 
+def _project(a: np.ndarray, gamma: np.ndarray, w: np.ndarray):
+    """Weighted design matrix, weighted Γ and the least-squares f (variable projection)."""
+    aw = a * w[:, None]
+    b = gamma * w
+    f, *_ = np.linalg.lstsq(aw, b, rcond=None)
+    return aw, b, f
+
+
 def _residuals(theta, model, data, w):
-    a = model.design(theta, data.x, data.N) * w[:, None]
-    b = data.Gamma * w
+    a = model.design(theta, data.x, data.N)
     if not np.all(np.isfinite(a)):
         return np.full(data.size, 1e6)
-    f, *_ = np.linalg.lstsq(a, b, rcond=None)
-    return a @ f - b
-
-
-def _linear(theta, model, data, w) -> np.ndarray:
-    a = model.design(theta, data.x, data.N) * w[:, None]
-    f, *_ = np.linalg.lstsq(a, data.Gamma * w, rcond=None)
-    return f
+    aw, b, f = _project(a, data.Gamma, w)
+    return aw @ f - b
 
 
 def _bounds(model: ScalingModel, data: ScalingData) -> tuple[np.ndarray, np.ndarray]:
@@ -229,7 +230,7 @@ def fit(
         raise FitError(f"{model.describe()}: no start converged; try other orders")
     chi2, res = best
     w = 1.0 / d.Gamma_err
-    f = _linear(res.x, model, d, w)
+    f = _project(model.design(res.x, d.x, d.N), d.Gamma, w)[2]
     err = np.full(res.x.size, math.nan)
     with np.errstate(all="ignore"), warnings.catch_warnings():
         warnings.simplefilter("ignore")

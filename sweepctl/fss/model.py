@@ -150,11 +150,15 @@ class ScalingModel:
         """Γ of the scaling form at (x, N)."""
         return self.design(theta, np.asarray(x, float), np.asarray(n, float)) @ f
 
+    def relevant_curve(self, f: np.ndarray, psi0: np.ndarray) -> np.ndarray:
+        """F(ψ_0, 0): the scaling function with the irrelevant field switched off."""
+        psi0 = np.asarray(psi0, float)
+        terms = [f[c] * psi0**i for c, (i, j) in enumerate(self.f_powers()) if j == 0]
+        return np.sum(terms, axis=0)
+
     def relevant_part(
         self, theta: np.ndarray, f: np.ndarray, x: np.ndarray, n: np.ndarray
     ) -> tuple[np.ndarray, np.ndarray]:
-        """(ψ_0, F(ψ_0, 0)) — the collapse curve with the irrelevant field removed."""
+        """(ψ_0, F(ψ_0, 0)) at the points — the collapse with the irrelevant field removed."""
         psi0, _ = self.fields(theta, np.asarray(x, float), np.asarray(n, float))
-        cols = [(i, j) for i, j in self.f_powers()]
-        val = sum(f[c] * psi0**i for c, (i, j) in enumerate(cols) if j == 0)
-        return psi0, val
+        return psi0, self.relevant_curve(f, psi0)

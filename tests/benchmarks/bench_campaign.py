@@ -97,13 +97,20 @@ def plain_loop(recipe_path: Path, layers: int) -> float:
     return time.perf_counter() - t0
 
 
+_PLAIN_CODE = (
+    "import sys; sys.path.insert(0, sys.argv[1]); import bench_campaign as b; "
+    "from pathlib import Path; print(b.plain_loop(Path(sys.argv[2]), int(sys.argv[3])))"
+)
+
+
+def _plain_cmd(rpath: Path, layers: int) -> list[str]:
+    """A fresh interpreter running :func:`plain_loop` and printing its seconds."""
+    return [sys.executable, "-c", _PLAIN_CODE, str(Path(__file__).parent), str(rpath), str(layers)]
+
+
 def _plain_in_subprocess(rpath: Path, layers: int) -> float:
-    code = (
-        "import sys; sys.path.insert(0, sys.argv[1]); import bench_campaign as b; "
-        "from pathlib import Path; print(b.plain_loop(Path(sys.argv[2]), int(sys.argv[3])))"
-    )
     out = subprocess.run(
-        [sys.executable, "-c", code, str(Path(__file__).parent), str(rpath), str(layers)],
+        _plain_cmd(rpath, layers),
         capture_output=True,
         text=True,
         check=True,
@@ -154,10 +161,6 @@ def overhead_concurrent(layers: int, tmp: Path, rounds: int) -> None:
     """
     rpath = tmp / "bench.toml"
     rpath.write_text(recipe_text(layers))
-    code = (
-        "import sys; sys.path.insert(0, sys.argv[1]); import bench_campaign as b; "
-        "from pathlib import Path; print(b.plain_loop(Path(sys.argv[2]), int(sys.argv[3])))"
-    )
     n = POINTS * REPLICAS_PER_POINT
     print(f"\nconcurrent, pinned: {n} replicas at N = {WIDTH}, {layers:,} layers; {rounds} rounds")
     print(f"{'round':>5}{'plain s':>10}{'run s':>10}{'inside s':>10}{'overhead':>10}")
@@ -165,7 +168,7 @@ def overhead_concurrent(layers: int, tmp: Path, rounds: int) -> None:
     for k in range(rounds):
         store = tmp / f"pinned-{k}"
         plain = subprocess.Popen(
-            [sys.executable, "-c", code, str(Path(__file__).parent), str(rpath), str(layers)],
+            _plain_cmd(rpath, layers),
             stdout=subprocess.PIPE,
             text=True,
             preexec_fn=lambda: os.sched_setaffinity(0, {0}),

@@ -143,20 +143,9 @@ def assert_row_recomputes(row: dict) -> None:
     import numpy as np
 
     from sweepctl.plan import ReplicaSpec
-    from sweepctl.recipe import Point
     from sweepctl.worker import compute_replica
 
-    spec = ReplicaSpec(
-        point=Point(row["p_block"], row["p_open"], row["epsilon"], row["width"], row["x"]),
-        replica=row["replica"],
-        entropy=int(row["entropy"], 16),
-        layers=row["layers"],
-        warmup=row["warmup"],
-        strips=row["strips"],
-        checkpoint="",
-        checkpoint_seconds=1e9,
-    )
-    fresh = compute_replica(spec, use_checkpoint=False)
+    fresh = compute_replica(ReplicaSpec.from_row(row), use_checkpoint=False)
     assert np.asarray(fresh.gamma_strips).tobytes() == np.asarray(row["gamma_strips"]).tobytes()
     assert np.asarray(fresh.exponents).tobytes() == np.asarray(row["exponents"]).tobytes()
 
