@@ -54,7 +54,7 @@ def dask_mapper(
     progress: Progress | None = None,
 ) -> Iterator[Callable]:
     """A ``mapper(func, jobs)`` that runs jobs on Dask (embedded cluster by default)."""
-    from sweepctl.execute import Connection, RunOptions
+    from sweepctl.campaign.connect import Connection, RunOptions
 
     conn = Connection(
         RunOptions(workers=workers, scheduler=scheduler, scheduler_file=scheduler_file)
@@ -137,8 +137,8 @@ def scan_source(
 
 def provenance(store_dir: Path) -> list[tuple[str, str]]:
     """Campaign facts for the report: code versions, entropy, replicas, CPU-hours."""
-    from sweepctl.store import Store
-    from sweepctl.summary import store_recipe
+    from sweepctl.campaign.store import Store
+    from sweepctl.campaign.summary import store_recipe
 
     store = Store(store_dir)
     campaign, _, frozen = store_recipe(store)

@@ -140,13 +140,13 @@ def calibration_payload(rows: list[BenchRow], gemm: float | None = None) -> dict
 
 
 def cost_model(widths: list[int], path: str | Path | None = None, measure: bool = True):
-    """A :class:`~sweepctl.plan.CostModel` and where it came from.
+    """A :class:`~sweepctl.campaign.plan.CostModel` and where it came from.
 
     ``path`` (a ``sweepctl bench --json`` file) wins; then this machine's cached
     calibration; otherwise a short measurement at ``widths`` (saved to the cache).
     Returns ``(None, reason)`` when nothing is stored and ``measure`` is false.
     """
-    from sweepctl.plan import CostModel
+    from sweepctl.campaign.plan import CostModel
 
     if path is not None:
         p = Path(path)

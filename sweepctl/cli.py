@@ -148,7 +148,7 @@ def plan(
 ) -> None:
     """Points, replicas, seeds and estimated cost of a recipe (nothing is run)."""
     from sweepctl.bench import cost_model
-    from sweepctl.plan import make_plan
+    from sweepctl.campaign.plan import make_plan
 
     rec = load_recipe_or_fail(recipe)
     with console.status("calibrating the kernel…") if not json_out else _null():
@@ -200,7 +200,7 @@ class _null:
 
 
 def load_recipe_or_fail(path: Path):
-    from sweepctl.recipe import load_recipe
+    from sweepctl.campaign.recipe import load_recipe
 
     return load_recipe(path)
 
@@ -306,8 +306,9 @@ def run(
 ) -> None:
     """Run or continue a campaign until every point reaches its precision (or cap)."""
     from sweepctl.bench import cost_model
-    from sweepctl.execute import RunOptions, run_campaign
-    from sweepctl.store import Store
+    from sweepctl.campaign.connect import RunOptions
+    from sweepctl.campaign.driver import run_campaign
+    from sweepctl.campaign.store import Store
 
     ways = (
         ("--scheduler", scheduler),
@@ -393,8 +394,8 @@ def merge(
     ] = None,
 ) -> None:
     """Write the per-point table (Parquet and CSV)."""
-    from sweepctl.store import Store, atomic_write_bytes
-    from sweepctl.summary import merge_table
+    from sweepctl.campaign.store import Store, atomic_write_bytes
+    from sweepctl.campaign.summary import merge_table
 
     st = Store(store)
     df = merge_table(st)
@@ -421,8 +422,8 @@ def status(
 ) -> None:
     """Per-point progress, precision reached and remaining cost."""
     from sweepctl.bench import cost_model
-    from sweepctl.store import Store
-    from sweepctl.summary import status_rows
+    from sweepctl.campaign.store import Store
+    from sweepctl.campaign.summary import status_rows
 
     st = Store(store)
     st.require()
@@ -472,8 +473,8 @@ def audit(
     ] = None,
 ) -> None:
     """Check integrity, trace seeds, recompute replicas; exit 1 on any problem."""
-    from sweepctl.audit import audit_store, parse_selector, recompute, seed_trace
-    from sweepctl.store import Store
+    from sweepctl.campaign.audit import audit_store, parse_selector, recompute, seed_trace
+    from sweepctl.campaign.store import Store
 
     st = Store(store)
     st.require()

@@ -1,4 +1,11 @@
-"""Points tables for the fit: from a store (merged on the fly) or a CSV/Parquet file."""
+"""Points tables for the fit: from a store (merged on the fly) or a CSV/Parquet file.
+
+Columns: ``N``, ``x``, ``Gamma``, ``Gamma_err`` (required), ``p_block``, ``p_open``,
+``epsilon`` (slices), and ``n_strips`` (optional): the number of independent strip
+estimates behind each ``Gamma_err``.  Without ``n_strips`` the errors are treated as exact
+and the fit says so (``Fit.gof_method``); with it, the goodness of fit and the resampled
+intervals account for the errors being estimates (:mod:`sweepctl.fss.fit`).
+"""
 
 from __future__ import annotations
 
@@ -12,14 +19,16 @@ from sweepctl.fss.fit import FitError, ScalingData
 
 REQUIRED = ("N", "x", "Gamma", "Gamma_err")
 SLICE_COLUMNS = ("p_block", "p_open", "epsilon")
+#: optional: independent strip estimates behind Gamma_err (absent: errors taken as exact)
+STRIPS_COLUMN = "n_strips"
 
 
 def read_points(source: str | Path) -> pd.DataFrame:
     """The per-point table of a store directory, or a CSV / Parquet points file."""
     src = Path(source)
     if src.is_dir():
-        from sweepctl.store import Store
-        from sweepctl.summary import merge_table
+        from sweepctl.campaign.store import Store
+        from sweepctl.campaign.summary import merge_table
 
         store = Store(src)
         if not store.campaign_file.exists():
@@ -50,7 +59,8 @@ def read_points(source: str | Path) -> pd.DataFrame:
             f"{src}: column(s) {', '.join(missing)} missing; a points table needs "
             f"{', '.join(REQUIRED)} (sweepctl merge writes one)"
         )
-    for c in (*REQUIRED, *(s for s in SLICE_COLUMNS if s in df.columns)):
+    optional = (*SLICE_COLUMNS, STRIPS_COLUMN)
+    for c in (*REQUIRED, *(s for s in optional if s in df.columns)):
         if not pd.api.types.is_numeric_dtype(df[c]):
             raise FitError(f"{src}: column {c} is not numeric; fix the table")
     return df
@@ -66,7 +76,7 @@ class Slice:
 
     @property
     def symmetric(self) -> bool:
-        """p_block = p_open: the network is self-dual (x_c = 0, REFERENCES.md)."""
+        """p_block = p_open: the network is self-dual (x_c = 0; [K7] tests/REFERENCES.md)."""
         if self.p_block is None or self.p_open is None:
             return False
         return bool(np.isclose(self.p_block, self.p_open, rtol=0, atol=1e-12))
@@ -108,7 +118,8 @@ def select(df: pd.DataFrame, sl: Slice) -> ScalingData:
             mask &= np.isclose(df["epsilon"], sl.epsilon)
         part = df[mask]
     part = part.sort_values(["N", "x"])
-    return ScalingData(part["N"], part["x"], part["Gamma"], part["Gamma_err"])
+    strips = part[STRIPS_COLUMN] if STRIPS_COLUMN in part.columns else None
+    return ScalingData(part["N"], part["x"], part["Gamma"], part["Gamma_err"], strips)
 
 
 def choose_slice(

@@ -1,6 +1,6 @@
 """Scaling forms for the finite-size-scaling fit of Γ(x, N).
 
-The form is that of Slevin and Ohtsuki [1]_:
+The form is that of Slevin and Ohtsuki [1]_ ([M5] tests/REFERENCES.md):
 
 .. math::
 
@@ -12,13 +12,15 @@ the relevant field :math:`u_0 = w + \\sum_{k=2}^{m_R} a_k w^k` and the irrelevan
 the overall scales live in ``f``).  ``y < 0`` is the leading irrelevant exponent.
 
 *Symmetric* forms encode the duality x → −x of networks with p_block = p_open
-(REFERENCES.md, [derived]): x_c = 0, u_0 odd and u_1 even in x, hence F even in ψ_0.
+([K7] tests/REFERENCES.md, derived): x_c = 0, u_0 odd and u_1 even in x, hence F even in
+ψ_0.
 
 The *logarithmic* variant replaces ``N^y`` by ``1/ln N`` (no ``y``), a marginal correction
 offered for comparison against the power law.
 
 ``F`` is linear in ``f``; the fit profiles it out by weighted linear least squares for each
-trial of the nonlinear parameters (variable projection, Golub and Pereyra [2]_).
+trial of the nonlinear parameters (variable projection, Golub and Pereyra [2]_; [M7]
+tests/REFERENCES.md).
 
 References
 ----------

@@ -2,9 +2,9 @@
 
 For each (disorder, N, x) the ε-values' Γ are compared with their weighted mean;
 χ² = Σ ((Γ_ε − Γ̄)/σ_ε)² with (number of ε − 1) degrees of freedom per x, summed over x
-([derived]: independent Gaussian estimates of one value).  The recommended range is the
-longest run of ε values, starting from the smallest, over which every width is flat
-(p ≥ 0.05).
+([M6] tests/REFERENCES.md: independent Gaussian estimates of one value).  The recommended
+range is the longest run of ε values, starting from the smallest, over which every width
+is flat (p ≥ 0.05).
 """
 
 from __future__ import annotations

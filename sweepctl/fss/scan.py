@@ -1,8 +1,10 @@
 """Model comparison: every order combination and smallest-width window, and a choice.
 
-The choice follows the practice of Slevin and Ohtsuki (Phys. Rev. Lett. 82, 382 (1999)):
-accept fits with goodness-of-fit probability ≥ 0.1, prefer the fewest parameters, and
-require ν to be stable when the smallest widths are dropped.
+The choice follows the practice of Slevin and Ohtsuki (Phys. Rev. Lett. 82, 382 (1999);
+[M5] tests/REFERENCES.md): accept fits with goodness-of-fit probability ≥ 0.1, prefer the
+fewest parameters, and require ν to be stable when the smallest widths are dropped.  The
+probability is :attr:`Fit.p_value`, which accounts for errors estimated from few strips
+when the data carry ``n_strips`` ([S2] tests/REFERENCES.md; :mod:`sweepctl.fss.fit`).
 """
 
 from __future__ import annotations

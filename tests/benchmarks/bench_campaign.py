@@ -28,11 +28,11 @@ import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 
-from sweepctl.execute import open_campaign
-from sweepctl.plan import ReplicaSpec
-from sweepctl.recipe import load_recipe
-from sweepctl.store import Store, code_version
-from sweepctl.worker import compute_replica
+from sweepctl.campaign.driver import open_campaign
+from sweepctl.campaign.plan import ReplicaSpec
+from sweepctl.campaign.recipe import load_recipe
+from sweepctl.campaign.store import Store, code_version
+from sweepctl.campaign.worker import compute_replica
 
 WIDTH = 16
 POINTS = 6

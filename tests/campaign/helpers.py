@@ -22,7 +22,7 @@ BASE = {
         "disorder": [{"p": 0.0}],
         "epsilon": [1e-6],
     },
-    "precision": {"target": 0.03, "max_layers": 40_000},
+    "precision": {"target": 0.03, "max_layers": 60_000},
     "replica": {"layers": 4000, "warmup": 32, "strips": 4, "initial": 2, "checkpoint_seconds": 60},
 }
 
@@ -142,8 +142,8 @@ def assert_row_recomputes(row: dict) -> None:
     """The stored replica equals, bit for bit, the same replica computed afresh here."""
     import numpy as np
 
-    from sweepctl.plan import ReplicaSpec
-    from sweepctl.worker import compute_replica
+    from sweepctl.campaign.plan import ReplicaSpec
+    from sweepctl.campaign.worker import compute_replica
 
     fresh = compute_replica(ReplicaSpec.from_row(row), use_checkpoint=False)
     assert np.asarray(fresh.gamma_strips).tobytes() == np.asarray(row["gamma_strips"]).tobytes()

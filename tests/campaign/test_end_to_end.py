@@ -9,7 +9,7 @@ import shutil
 import pandas as pd
 import pytest
 
-from sweepctl.store import REPLICA_SCHEMA
+from sweepctl.campaign.store import REPLICA_SCHEMA
 from tests.campaign.helpers import cli, events, merged, snapshot, write_recipe
 
 MERGED_COLUMNS = [
@@ -60,7 +60,7 @@ def test_run_merge_status_audit(reference_store):
 def test_rows_carry_seeds_and_provenance(reference_store):
     import pyarrow.parquet as pq
 
-    from sweepctl.recipe import Point
+    from sweepctl.campaign.recipe import Point
 
     parts = sorted((reference_store / "replicas").glob("part-*.parquet"))
     assert parts

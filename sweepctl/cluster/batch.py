@@ -394,7 +394,8 @@ def make_cluster(p: Profile, store_root: Path):
     kw["scheduler_options"] = sched
     kw["log_directory"] = str(store_root / "batch-logs")
     cluster = cls(**kw)
-    cluster.sweepctl_system = p.system  # for the driver's watchdog
+    # for the driver's watchdog, which must not import this layer
+    cluster.sweepctl_prune = lambda: prune_dead_jobs(cluster, p.system)
     cluster.adapt(minimum_jobs=p.min_jobs, maximum_jobs=p.max_jobs)
     return cluster
 

@@ -7,10 +7,10 @@ import math
 import numpy as np
 import pandas as pd
 
-from sweepctl.execute import build_progress
-from sweepctl.plan import CostModel, Frozen
-from sweepctl.recipe import Recipe
-from sweepctl.store import Store
+from sweepctl.campaign.plan import CostModel, Frozen
+from sweepctl.campaign.progress import build_progress
+from sweepctl.campaign.recipe import Recipe
+from sweepctl.campaign.store import Store
 
 __all__ = ["MERGED_COLUMNS", "merge_table", "status_rows", "store_recipe"]
 
@@ -22,6 +22,7 @@ MERGED_COLUMNS = [
     "x",
     "Gamma",
     "Gamma_err",
+    "n_strips",
     "replicas",
     "layers",
     "cpu_hours",
@@ -39,7 +40,11 @@ def store_recipe(store: Store) -> tuple[dict, Recipe, Frozen]:
 
 
 def merge_table(store: Store) -> pd.DataFrame:
-    """One row per point with Γ, its standard error over all strips of all replicas."""
+    """One row per point with Γ, its standard error over all strips of all replicas.
+
+    ``n_strips`` is the number of independent strip values behind ``Gamma_err`` (the
+    fit uses it: an error bar from few strips is itself uncertain).
+    """
     campaign, _, _ = store_recipe(store)
     target = float(campaign["target"])
     cols = [
@@ -74,6 +79,7 @@ def merge_table(store: Store) -> pd.DataFrame:
                 "x": float(first.x),
                 "Gamma": mean,
                 "Gamma_err": err,
+                "n_strips": int(gam.size),
                 "replicas": len(g),
                 "layers": int(g["layers"].sum()),
                 "cpu_hours": float(g["cpu_seconds"].sum()) / 3600.0,

@@ -32,6 +32,7 @@ import hashlib
 import json
 import math
 import tomllib
+from decimal import Decimal, localcontext
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -53,6 +54,7 @@ _REQUIRED = {
     "replica": set(),
 }
 _MAX_WIDTH = 4096
+_MAX_COUPLING = 10.0
 _MAX_POINTS = 1_000_000
 
 
@@ -266,18 +268,42 @@ def _couplings(src: str, v: Any) -> tuple[float, ...]:
         n = _int(src, f"{field}.num", v["num"], 1, "must be an integer >= 1")
         if n > 1 and not b > a:
             raise RecipeError(f"{field}.stop", v["stop"], "stop must be greater than start", src)
-        xs = [a] if n == 1 else [a + (b - a) * i / (n - 1) for i in range(n)]
-        return tuple(canonical_float(x) for x in xs)
+        for k, val in (("start", a), ("stop", b)):
+            if abs(val) > _MAX_COUPLING:
+                raise RecipeError(
+                    f"{field}.{k}", v[k], f"|x| > {_MAX_COUPLING:g} is outside any useful range", src
+                )
+        xs = _decimal_range(a, b, n)
+        cx = [canonical_float(x) for x in xs]
+        _unique(src, field, cx, xs)
+        return tuple(cx)
     lst = _nonempty_list(src, field, v, "couplings = [-0.2, 0.0, 0.2]")
     xs = [
         _num(src, f"{field}[{i}]", x, "couplings must be finite numbers") for i, x in enumerate(lst)
     ]
     for i, x in enumerate(xs):
-        if abs(x) > 10:
-            raise RecipeError(f"{field}[{i}]", lst[i], "|x| > 10 is outside any useful range", src)
+        if abs(x) > _MAX_COUPLING:
+            raise RecipeError(
+                f"{field}[{i}]", lst[i], f"|x| > {_MAX_COUPLING:g} is outside any useful range", src
+            )
     cx = [canonical_float(x) for x in xs]
     _unique(src, field, cx, lst)
     return tuple(cx)
+
+
+def _decimal_range(a: float, b: float, n: int) -> list[float]:
+    """``n`` evenly spaced values from ``a`` to ``b``, computed in decimal arithmetic on
+    the numbers as written (their shortest repr), then rounded once to binary.
+
+    So a range gives exactly the floats the same decimals give in a list: from −0.2 to
+    0.1 in 4 steps is −0.2, −0.1, 0.0, 0.1 (binary arithmetic gives 2.78e-17 for 0).
+    """
+    if n == 1:
+        return [a]
+    da, db = Decimal(repr(a)), Decimal(repr(b))
+    with localcontext() as ctx:
+        ctx.prec = 40
+        return [float(da + (db - da) * i / (n - 1)) for i in range(n)]
 
 
 def _disorder(src: str, v: Any) -> tuple[tuple[float, float], ...]:

@@ -8,11 +8,11 @@ from dataclasses import dataclass, field
 import numpy as np
 import pyarrow.parquet as pq
 
+from sweepctl.campaign.plan import ReplicaSpec
+from sweepctl.campaign.recipe import Point
+from sweepctl.campaign.store import REPLICA_SCHEMA, Duplicate, Store, code_version
+from sweepctl.campaign.summary import store_recipe
 from sweepctl.errors import SweepctlError
-from sweepctl.plan import ReplicaSpec
-from sweepctl.recipe import Point
-from sweepctl.store import REPLICA_SCHEMA, Store, code_version
-from sweepctl.summary import store_recipe
 
 __all__ = ["AuditReport", "audit_store", "parse_selector", "recompute", "seed_trace"]
 
@@ -36,6 +36,7 @@ class AuditReport:
     rows: int = 0
     problems: list[str] = field(default_factory=list)
     warnings: list[str] = field(default_factory=list)
+    duplicates: list[Duplicate] = field(default_factory=list)
     recomputed: list[dict] = field(default_factory=list)
 
     @property
@@ -49,25 +50,24 @@ def audit_store(store: Store) -> AuditReport:
     _campaign, _, frozen = store_recipe(store)
     entropy = f"{frozen.entropy:#x}"
     pinned = REPLICA_SCHEMA.remove_metadata()
-    seen: dict[tuple[str, int], str] = {}
+    readable = True
     for path in store.part_files():
         rep.files += 1
         try:
             t = pq.read_table(path)
         except Exception as exc:
             rep.problems.append(f"{path.name}: unreadable ({type(exc).__name__}: {exc})")
+            readable = False
             continue
         if not t.schema.remove_metadata().equals(pinned):
             rep.problems.append(f"{path.name}: schema differs from the pinned replica schema")
+            readable = False
             continue
         d = t.to_pydict()
         for i in range(t.num_rows):
             rep.rows += 1
             key, r = d["point_key"][i], d["replica"][i]
             where = f"{path.name} row {i} ({key}, replica {r})"
-            if (key, r) in seen:
-                rep.problems.append(f"{where}: duplicate of a row in {seen[(key, r)]}")
-            seen[(key, r)] = path.name
             missing = [c for c in _PROVENANCE if d[c][i] in (None, "", [])]
             if missing:
                 rep.problems.append(f"{where}: missing provenance {', '.join(missing)}")
@@ -90,6 +90,20 @@ def audit_store(store: Store) -> AuditReport:
                 rep.problems.append(
                     f"{where}: gamma_strips missing, of the wrong length or not finite"
                 )
+    if readable:
+        rows = store.collect_replica_rows(["point_key", "replica"])
+        for d in rows.conflicts:
+            rep.problems.append(
+                f"{d.other_file}: replica {d.replica} of {d.point_key} is also in "
+                f"{d.first_file} with different numbers (an integrity error: every command "
+                "refuses this store until one of them is removed)"
+            )
+        for d in rows.identical:
+            rep.duplicates.append(d)
+            rep.warnings.append(
+                f"{d.other_file}: replica {d.replica} of {d.point_key} is also in "
+                f"{d.first_file} with identical numbers (counted once everywhere)"
+            )
     for p in store.root.rglob(".*.tmp-*"):
         rep.warnings.append(
             f"leftover temporary {p.relative_to(store.root)} (removed by the next run)"
@@ -182,7 +196,7 @@ def recompute(
     out = []
     for r in sorted(chosen, key=lambda r: (r["point_key"], r["replica"])):
         spec = ReplicaSpec.from_row(r)
-        from sweepctl.worker import compute_replica
+        from sweepctl.campaign.worker import compute_replica
 
         new = compute_replica(spec, use_checkpoint=False)
         same = (

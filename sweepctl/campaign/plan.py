@@ -7,10 +7,18 @@ in a list: adding widths later leaves every existing seed unchanged.
 
 Rounds. A point starts with ``initial`` replicas. Whenever every replica of the
 current prefix ``0..R-1`` is complete, the relative standard error of ``Γ`` over all
-their strips decides: done if it meets the target, otherwise enough further
-replicas to reach it (assuming error ∝ 1/√replicas, with 20 % margin), bounded by the
-cap. Decisions use complete prefixes only, so the number of replicas a point ends
-with depends neither on timing nor on the number of workers.
+their strips decides: done if it meets the target *and* rests on at least
+``min_strip_estimates`` independent strip values, otherwise enough further replicas
+to reach both (assuming error ∝ 1/√replicas, with 20 % margin), bounded by the cap.
+Decisions use complete prefixes only, so the number of replicas a point ends with
+depends neither on timing nor on the number of workers.
+
+Why a minimum number of strips. The error bar is the sample standard deviation ``s``
+of ``n`` strip values over √n. For Gaussian values ``s`` has relative standard error
+≈ 1/√(2(n−1)) ([S1] tests/REFERENCES.md), so with the 16 strips of two 8-strip
+replicas ``s`` scatters by ≈ 18 %; a stop rule on such an ``s`` picks the points whose
+``s`` came out low, and a fit that takes ``s`` as exact misjudges χ². Requiring
+``n ≥ 51`` keeps ``s`` within ≈ 10 % (1/√100); the number is frozen in the store.
 """
 
 from __future__ import annotations
@@ -21,7 +29,7 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
-from sweepctl.recipe import Point, Recipe, RecipeError
+from sweepctl.campaign.recipe import Point, Recipe, RecipeError
 
 __all__ = [
     "CostModel",
@@ -44,6 +52,9 @@ GAMMA_GUESS = 0.85
 _MARGIN = 1.2
 #: Default per-point cap when the recipe gives none: this many replicas.
 DEFAULT_CAP_REPLICAS = 256
+#: Independent strip estimates a point needs before its stop rule may fire: the
+#: sample standard deviation of n values is then known to 1/√(2(n−1)) = 10 % ([S1]).
+MIN_STRIP_ESTIMATES = 51
 
 
 def replica_seed(entropy: int, point: Point, replica: int) -> np.random.SeedSequence:
@@ -66,6 +77,11 @@ class Frozen:
     replica_layers: dict[int, int] = field(default_factory=dict)
     max_layers: dict[int, int] = field(default_factory=dict)
     replica_rule: dict = field(default_factory=dict)  # what the recipe said, for checks
+    #: the cap as the recipe gave it (``max_layers`` / ``max_cpu_hours``): a change of
+    #: it re-derives every width's cap
+    cap_rule: dict = field(default_factory=dict)
+    #: strip estimates before a point may stop (0 in stores made before the rule)
+    min_strip_estimates: int = MIN_STRIP_ESTIMATES
 
     def warmup_for(self, width: int) -> int:
         from sweepctl.kernel import default_warmup
@@ -74,6 +90,10 @@ class Frozen:
 
     def max_replicas(self, width: int) -> int:
         return max(1, self.max_layers[width] // self.replica_layers[width])
+
+    def min_replicas(self) -> int:
+        """Replicas needed for :attr:`min_strip_estimates` strip values."""
+        return max(1, math.ceil(self.min_strip_estimates / self.strips))
 
     def to_json(self) -> dict:
         d = asdict(self)
@@ -91,7 +111,14 @@ class Frozen:
             replica_layers={int(k): int(v) for k, v in d["replica_layers"].items()},
             max_layers={int(k): int(v) for k, v in d["max_layers"].items()},
             replica_rule=d.get("replica_rule", {}),
+            cap_rule=d.get("cap_rule", {}),
+            # stores made before the rule keep the decisions they were made with
+            min_strip_estimates=int(d.get("min_strip_estimates", 0)),
         )
+
+
+def _cap_rule(recipe: Recipe) -> dict:
+    return {"max_layers": recipe.max_layers, "max_cpu_hours": recipe.max_cpu_hours}
 
 
 def _rule(recipe: Recipe) -> dict:
@@ -146,43 +173,77 @@ def freeze(
     cost: CostModel | None,
     previous: Frozen | None = None,
     default_seconds: float = DEFAULT_REPLICA_SECONDS,
+    source: str = "recipe",
 ) -> Frozen:
     """Frozen settings for ``recipe``: new widths are added, existing ones kept.
 
-    ``default_seconds`` is the replica duration used when the recipe names none (a
-    batch profile passes a fraction of its walltime).
+    Replica lengths never change once frozen. Caps follow the recipe: when its
+    ``max_layers`` / ``max_cpu_hours`` differ from what the store recorded, every
+    width's cap is derived again (so a raised cap reopens capped points), otherwise
+    the recorded conversion is kept. ``default_seconds`` is the replica duration used
+    when the recipe names none (a batch profile passes a fraction of its walltime).
     """
     if previous is None:
         entropy = recipe.entropy if recipe.entropy is not None else secrets.randbits(128)
         fz = Frozen(
-            entropy=entropy, strips=recipe.strips, warmup=recipe.warmup, replica_rule=_rule(recipe)
+            entropy=entropy,
+            strips=recipe.strips,
+            warmup=recipe.warmup,
+            replica_rule=_rule(recipe),
+            cap_rule=_cap_rule(recipe),
         )
     else:
         fz = Frozen.from_json(previous.to_json())
+        if fz.cap_rule != _cap_rule(recipe):
+            fz.max_layers = {}
+            fz.cap_rule = _cap_rule(recipe)
     for n in recipe.widths:
-        if n in fz.replica_layers:
-            continue
-        warm = fz.warmup_for(n)
-        if recipe.replica_layers is not None:
-            layers = recipe.replica_layers
-        else:
-            if cost is None:
-                raise ValueError("a replica duration needs a kernel calibration")
-            secs = recipe.replica_seconds or default_seconds
-            per_layer = cost.seconds_per_strip_layer(n) * recipe.strips
-            layers = max(64, round(secs / per_layer) - warm)
-        fz.replica_layers[n] = int(layers)
-        if recipe.max_layers is not None:
-            cap = recipe.max_layers
-        elif recipe.max_cpu_hours is not None:
-            if cost is None:
-                raise ValueError("a CPU-hour cap needs a kernel calibration")
-            per_layer = cost.seconds_per_strip_layer(n) * recipe.strips
-            cap = round(recipe.max_cpu_hours * 3600.0 / per_layer)
-        else:
-            cap = DEFAULT_CAP_REPLICAS * layers
-        fz.max_layers[n] = max(int(cap), int(layers))
+        if n not in fz.replica_layers:
+            fz.replica_layers[n] = _replica_layers(recipe, cost, n, fz, default_seconds)
+        if n not in fz.max_layers:
+            fz.max_layers[n] = _cap_layers(recipe, cost, n, fz.replica_layers[n])
+    for n in fz.max_layers:
+        if n in recipe.widths and fz.max_replicas(n) < fz.min_replicas():
+            field_name = (
+                "precision.max_cpu_hours"
+                if recipe.max_cpu_hours is not None
+                else "precision.max_layers"
+            )
+            need = fz.min_replicas() * fz.replica_layers[n]
+            raise RecipeError(
+                field_name,
+                recipe.max_cpu_hours if recipe.max_cpu_hours is not None else fz.max_layers[n],
+                f"at N = {n} the cap allows {fz.max_replicas(n)} replicas of {fz.strips} "
+                f"strips, fewer than the {fz.min_strip_estimates} strip estimates an error "
+                f"bar needs; allow at least {need:,} layers per point",
+                source,
+            )
     return fz
+
+
+def _replica_layers(
+    recipe: Recipe, cost: CostModel | None, n: int, fz: Frozen, default_seconds: float
+) -> int:
+    if recipe.replica_layers is not None:
+        return int(recipe.replica_layers)
+    if cost is None:
+        raise ValueError("a replica duration needs a kernel calibration")
+    secs = recipe.replica_seconds or default_seconds
+    per_layer = cost.seconds_per_strip_layer(n) * recipe.strips
+    return int(max(64, round(secs / per_layer) - fz.warmup_for(n)))
+
+
+def _cap_layers(recipe: Recipe, cost: CostModel | None, n: int, layers: int) -> int:
+    if recipe.max_layers is not None:
+        cap = recipe.max_layers
+    elif recipe.max_cpu_hours is not None:
+        if cost is None:
+            raise ValueError("a CPU-hour cap needs a kernel calibration")
+        per_layer = cost.seconds_per_strip_layer(n) * recipe.strips
+        cap = round(recipe.max_cpu_hours * 3600.0 / per_layer)
+    else:
+        cap = DEFAULT_CAP_REPLICAS * layers
+    return max(int(cap), int(layers))
 
 
 def check_compatible(recipe: Recipe, frozen: Frozen, source: str) -> None:
@@ -268,18 +329,24 @@ def relative_error(gamma_strips: np.ndarray) -> float:
     return float(np.std(g, ddof=1) / math.sqrt(g.size) / abs(mean))
 
 
-def next_target(prefix_gammas: list[np.ndarray], target: float, max_replicas: int) -> int:
+def next_target(
+    prefix_gammas: list[np.ndarray], target: float, max_replicas: int, min_estimates: int = 0
+) -> int:
     """Replica count a point should reach, given the complete prefix ``0..R-1``.
 
-    Returns ``R`` when the target is met or the cap is reached (the point is done).
+    Returns ``R`` when the target is met on at least ``min_estimates`` strip values,
+    or the cap is reached (the point is done).
     """
     r = len(prefix_gammas)
     if r >= max_replicas:
         return r
+    n = sum(int(np.size(g)) for g in prefix_gammas)
     rel = relative_error(np.concatenate(prefix_gammas)) if r else math.inf
-    if rel <= target:
+    if rel <= target and n >= min_estimates:
         return r
     want = math.ceil(r * (rel / target) ** 2 * _MARGIN) if math.isfinite(rel) else 2 * r
+    if n < min_estimates and r:
+        want = max(want, math.ceil(min_estimates / (n / r)))
     return int(min(max_replicas, max(r + 1, want)))
 
 

@@ -1,7 +1,7 @@
 """The unit of work: compute one replica, checkpointing as it goes.
 
 Runs inside Dask worker processes (and in ``audit`` recomputation). A replica is a
-pure function of its :class:`~sweepctl.plan.ReplicaSpec`; a checkpoint carries the
+pure function of its :class:`~sweepctl.campaign.plan.ReplicaSpec`; a checkpoint carries the
 whole strip state, so a replica resumed from one is bit-identical to one that was
 never interrupted.
 """
@@ -20,9 +20,9 @@ from pathlib import Path
 
 import numpy as np
 
+from sweepctl.campaign.plan import ReplicaSpec, replica_seed
+from sweepctl.campaign.store import atomic_write_bytes, code_version
 from sweepctl.kernel import NetworkModel, StripState
-from sweepctl.plan import ReplicaSpec, replica_seed
-from sweepctl.store import atomic_write_bytes, code_version
 
 __all__ = ["ReplicaOutput", "compute_replica", "read_checkpoint", "run_replica"]
 

@@ -28,6 +28,7 @@ import subprocess
 import time
 import uuid
 from collections.abc import Iterator
+from dataclasses import dataclass
 from functools import lru_cache
 from pathlib import Path
 
@@ -39,8 +40,12 @@ from sweepctl.errors import SweepctlError
 
 __all__ = [
     "REPLICA_SCHEMA",
+    "RESULT_COLUMNS",
+    "Duplicate",
+    "ReplicaRows",
     "Store",
     "StoreError",
+    "StoreIntegrityError",
     "StoreLocked",
     "atomic_write_bytes",
     "code_version",
@@ -96,6 +101,52 @@ class StoreLocked(StoreError):
     """Another live driver owns the store."""
 
 
+class StoreIntegrityError(StoreError):
+    """The store holds contradictory rows (the same replica with different numbers)."""
+
+
+#: The columns that make up a replica's result: two rows of one (point, replica) that
+#: agree on all of them are one result stored twice; provenance (times, worker, host)
+#: may differ between two honest computations of the same replica.
+RESULT_COLUMNS = (
+    "point_key",
+    "p_block",
+    "p_open",
+    "epsilon",
+    "width",
+    "x",
+    "replica",
+    "entropy",
+    "spawn_key",
+    "bit_generator",
+    "layers",
+    "warmup",
+    "strips",
+    "gamma_strips",
+    "exponents",
+    "Gamma",
+)
+
+
+@dataclass(frozen=True)
+class Duplicate:
+    """A (point, replica) found in two rows."""
+
+    point_key: str
+    replica: int
+    first_file: str
+    other_file: str
+
+
+@dataclass
+class ReplicaRows:
+    """Replica rows, one per (point, replica), and the duplicates the reader met."""
+
+    table: pa.Table
+    identical: list[Duplicate]
+    conflicts: list[Duplicate]
+
+
 @lru_cache(maxsize=1)
 def code_version() -> dict[str, str]:
     """sweepctl version and, for a git checkout, its commit (``-dirty`` if modified)."""
@@ -149,6 +200,46 @@ def atomic_write_bytes(path: Path, data: bytes) -> None:
     _fsync_dir(path.parent)
 
 
+def _try_flock(fd: int) -> bool | None:
+    """``True`` if the exclusive flock was taken, ``False`` if another process holds it,
+    ``None`` if the file system has no flock."""
+    import errno
+    import fcntl
+
+    try:
+        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+    except BlockingIOError:
+        return False
+    except OSError as exc:
+        if exc.errno in (errno.ENOLCK, errno.ENOSYS, errno.EINVAL, errno.EOPNOTSUPP):
+            return None
+        raise
+    return True
+
+
+def _same_file(fd: int, path: Path) -> bool:
+    try:
+        a, b = os.fstat(fd), os.stat(path)
+    except OSError:
+        return False
+    return (a.st_dev, a.st_ino) == (b.st_dev, b.st_ino)
+
+
+def _read_owner(fd: int) -> dict:
+    with contextlib.suppress(OSError, ValueError):
+        data = os.pread(fd, 4096, 0)
+        owner = json.loads(data) if data.strip() else {}
+        return owner if isinstance(owner, dict) else {}
+    return {}
+
+
+def _read_json(path: Path) -> dict:
+    with contextlib.suppress(OSError, ValueError):
+        d = json.loads(path.read_text())
+        return d if isinstance(d, dict) else {}
+    return {}
+
+
 def _pid_alive(pid: int) -> bool:
     try:
         os.kill(pid, 0)
@@ -171,6 +262,7 @@ class Store:
         self.lock_file = self.root / "lock"
         self.merged_dir = self.root / "merged"
         self._locked = False
+        self._lock_fd: int | None = None
 
     # -- existence ------------------------------------------------------------------
     def exists(self) -> bool:
@@ -181,7 +273,7 @@ class Store:
         the lock, TLS certificates, scheduler files and batch logs are its own)."""
         if not self.root.exists():
             return []
-        own = {"lock", "tls", "batch-logs"}
+        own = {"lock", "lock.takeover", "tls", "batch-logs"}
         return [
             p
             for p in self.root.iterdir()
@@ -227,40 +319,111 @@ class Store:
         finally:
             self.release_lock()
 
-    def acquire_lock(self) -> None:
+    def acquire_lock(self) -> dict | None:
+        """Take the store's lock; returns the dead previous owner's record, if any.
+
+        The lock is an exclusive ``flock`` on ``STORE/lock``, held for the driver's
+        lifetime: the kernel drops it when the process dies however it dies, so a crash
+        at any moment (also between creating the file and writing the owner's record)
+        leaves no lock behind, and two drivers can never both take over a dead one's
+        lock. Where the file system has no ``flock``, :meth:`_acquire_by_link` is the
+        fallback.
+        """
         host = socket.gethostname()
         me = {"pid": os.getpid(), "host": host, "since": time.strftime("%Y-%m-%dT%H:%M:%S%z")}
-        for _ in range(2):
+        for _ in range(20):
+            fd = os.open(self.lock_file, os.O_RDWR | os.O_CREAT, 0o644)
             try:
-                fd = os.open(self.lock_file, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
-            except FileExistsError:
-                try:
-                    other = json.loads(self.lock_file.read_text())
-                except (OSError, json.JSONDecodeError):
-                    other = {}
-                pid, ohost = other.get("pid"), other.get("host")
-                if ohost == host and isinstance(pid, int) and not _pid_alive(pid):
-                    # The previous driver died (killed, node lost): take over.
-                    with contextlib.suppress(FileNotFoundError):
-                        self.lock_file.unlink()
+                locked = _try_flock(fd)
+                if locked is None:  # no flock on this file system
+                    os.close(fd)
+                    return self._acquire_by_link(me)
+                if locked is False:
+                    raise StoreLocked(self._locked_message(_read_owner(fd)))
+                if not _same_file(fd, self.lock_file):
+                    os.close(fd)  # released and removed meanwhile: try the new file
                     continue
-                raise StoreLocked(
-                    f"{self.root} is in use by the driver with pid {pid} on host {ohost} "
-                    f"(since {other.get('since')}); wait for it, or if it is dead on another "
-                    f"host, remove {self.lock_file}"
-                ) from None
-            with os.fdopen(fd, "w") as fh:
-                json.dump(me, fh)
+                previous = _read_owner(fd)
+                pid = previous.get("pid")
+                if previous.get("host") not in (None, host) or (
+                    isinstance(pid, int) and pid != os.getpid() and _pid_alive(pid)
+                ):
+                    # flock on a network file system may be local to one node, and a
+                    # driver of an older version holds none: never take over from another
+                    # host, or from a live process, on the flock's word alone
+                    raise StoreLocked(self._locked_message(previous))
+                os.ftruncate(fd, 0)
+                os.pwrite(fd, json.dumps(me).encode(), 0)
+                os.fsync(fd)
+            except BaseException:
+                with contextlib.suppress(OSError):
+                    os.close(fd)
+                raise
+            self._lock_fd = fd
             self._locked = True
-            return
+            return previous or None
         raise StoreLocked(f"could not take the lock {self.lock_file}")  # pragma: no cover
+
+    def _acquire_by_link(self, me: dict) -> dict | None:
+        """Lock without flock: the record is written to a temporary and hard-linked into
+        place (atomic, never empty); a dead owner on this host is taken over while holding
+        ``lock.takeover`` (``mkdir`` is atomic), so two drivers cannot both take over."""
+        tmp = self.root / f".lock.tmp-{uuid.uuid4().hex[:8]}"
+        tmp.write_text(json.dumps(me))
+        previous = None
+        try:
+            for _ in range(3):
+                try:
+                    os.link(tmp, self.lock_file)
+                except FileExistsError:
+                    other = _read_json(self.lock_file)
+                    pid = other.get("pid")
+                    dead = isinstance(pid, int) and not _pid_alive(pid)
+                    if other.get("host") != me["host"] or not dead:
+                        raise StoreLocked(self._locked_message(other)) from None
+                    guard = self.root / "lock.takeover"
+                    try:
+                        guard.mkdir()
+                    except FileExistsError:
+                        raise StoreLocked(
+                            f"another driver is taking over {self.lock_file}; try again, or "
+                            f"remove {guard} if no driver is starting"
+                        ) from None
+                    try:
+                        if _read_json(self.lock_file) == other:
+                            self.lock_file.unlink()
+                            previous = other
+                    finally:
+                        guard.rmdir()
+                    continue
+                self._locked = True
+                return previous
+        finally:
+            with contextlib.suppress(OSError):
+                tmp.unlink()
+        raise StoreLocked(f"could not take the lock {self.lock_file}")  # pragma: no cover
+
+    def _locked_message(self, other: dict) -> str:
+        pid, ohost = other.get("pid"), other.get("host")
+        return (
+            f"{self.root} is in use by the driver with pid {pid} on host {ohost} "
+            f"(since {other.get('since')}); wait for it to finish, or if that driver is dead "
+            f"on another host, remove {self.lock_file}"
+        )
 
     def release_lock(self) -> None:
         if not self._locked:
             return
-        with contextlib.suppress(OSError, json.JSONDecodeError):
-            if json.loads(self.lock_file.read_text()).get("pid") == os.getpid():
-                self.lock_file.unlink()
+        fd, self._lock_fd = self._lock_fd, None
+        # Remove the file while still holding the flock; a driver that opened it just
+        # before sees, after getting the flock, that the path now names another file.
+        with contextlib.suppress(OSError):
+            if fd is None or _same_file(fd, self.lock_file):
+                if fd is not None or _read_json(self.lock_file).get("pid") == os.getpid():
+                    self.lock_file.unlink()
+        if fd is not None:
+            with contextlib.suppress(OSError):
+                os.close(fd)
         self._locked = False
 
     # -- repairs after a kill (lock held) ------------------------------------------------
@@ -307,23 +470,64 @@ class Store:
         return final
 
     def read_replicas(self, columns: list[str] | None = None) -> pa.Table:
-        """All replica rows (pinned schema), in file order."""
-        parts = self.part_files()
-        if not parts:
-            return (
-                REPLICA_SCHEMA.empty_table()
-                if columns is None
-                else REPLICA_SCHEMA.empty_table().select(columns)
+        """All replica rows (pinned schema), one per (point, replica), in file order.
+
+        The one reader of replica rows: replay, merge, status, fit, report and audit all
+        use it. A row stored twice with the same numbers (a flush repeated after a kill,
+        a part file copied by hand) is counted once; the same replica stored with
+        different numbers raises :class:`StoreIntegrityError`.
+        """
+        return self.replica_rows(columns).table
+
+    def replica_rows(self, columns: list[str] | None = None) -> ReplicaRows:
+        """Like :meth:`read_replicas`, with the duplicates it collapsed (for ``audit``)."""
+        rows = self.collect_replica_rows(columns)
+        if rows.conflicts:
+            c = rows.conflicts[0]
+            more = f" (and {len(rows.conflicts) - 1} more)" if len(rows.conflicts) > 1 else ""
+            raise StoreIntegrityError(
+                f"{self.root}: replica {c.replica} of point {c.point_key} is stored twice "
+                f"with different numbers ({c.first_file}, {c.other_file}){more}; the store "
+                "is damaged — see `sweepctl audit`, and restore the part files from a "
+                "backup or remove the wrong one"
             )
-        want = (
-            REPLICA_SCHEMA
-            if columns is None
-            else pa.schema([REPLICA_SCHEMA.field(c) for c in columns])
-        )
+        return rows
+
+    def collect_replica_rows(self, columns: list[str] | None) -> ReplicaRows:
+        """Rows one per (point, replica) and every duplicate, conflicting ones included
+        (``audit`` reports them; everything else reads through :meth:`read_replicas`)."""
+        parts = self.part_files()
+        want_cols = list(REPLICA_SCHEMA.names) if columns is None else list(columns)
+        if not parts:
+            return ReplicaRows(REPLICA_SCHEMA.empty_table().select(want_cols), [], [])
+        read_cols = list(dict.fromkeys([*want_cols, "point_key", "replica"]))
+        want = pa.schema([REPLICA_SCHEMA.field(c) for c in read_cols])
         # ParquetFile rather than read_table: the latter loads pyarrow.dataset and pandas
         # (~0.8 s), paid by every driver start.
-        tables = [_read_part(p, columns, want) for p in parts]
-        return pa.concat_tables(tables).replace_schema_metadata(None)
+        tables = [_read_part(p, read_cols, want) for p in parts]
+        sizes = [t.num_rows for t in tables]
+        table = pa.concat_tables(tables).replace_schema_metadata(None)
+        keys = table.column("point_key").to_pylist()
+        reps = table.column("replica").to_pylist()
+        first: dict[tuple[str, int], int] = {}
+        dups: list[tuple[int, int]] = []
+        for i, k in enumerate(zip(keys, reps, strict=True)):
+            j = first.setdefault(k, i)
+            if j != i:
+                dups.append((j, i))
+        identical: list[Duplicate] = []
+        conflicts: list[Duplicate] = []
+        if dups:
+            file_of = [p.name for p, n in zip(parts, sizes, strict=True) for _ in range(n)]
+            numbers = pa.concat_tables(
+                [_read_part(p, list(RESULT_COLUMNS), _RESULT_SCHEMA) for p in parts]
+            ).to_pylist()
+            for j, i in dups:
+                d = Duplicate(keys[i], int(reps[i]), file_of[j], file_of[i])
+                (identical if numbers[i] == numbers[j] else conflicts).append(d)
+            keep = sorted(first.values())
+            table = table.take(pa.array(keep, type=pa.int64()))
+        return ReplicaRows(table.select(want_cols), identical, conflicts)
 
     # -- events ---------------------------------------------------------------------
     def append_events(self, events: list[dict]) -> None:
@@ -349,8 +553,18 @@ class Store:
         return self.checkpoints_dir / point_short / f"r{replica:06d}.ckpt"
 
 
+_RESULT_SCHEMA = pa.schema([REPLICA_SCHEMA.field(c) for c in RESULT_COLUMNS])
+
+
 def _read_part(path: Path, columns: list[str] | None, want: pa.Schema) -> pa.Table:
     """One part file read and cast to the pinned schema (``want``, in its column order)."""
-    table = pq.ParquetFile(path).read(columns=columns)
-    table = table.select(want.names)
-    return table if table.schema.equals(want) else table.cast(want)
+    try:
+        table = pq.ParquetFile(path).read(columns=columns)
+        table = table.select(want.names)
+        return table if table.schema.equals(want) else table.cast(want)
+    except (OSError, KeyError, ValueError, pa.ArrowException) as exc:
+        raise StoreIntegrityError(
+            f"{path}: not a readable replica table of this store ({type(exc).__name__}: "
+            f"{str(exc).splitlines()[0] if str(exc) else ''}); see `sweepctl audit`, and "
+            "move the file out of replicas/ if it does not belong there"
+        ) from None

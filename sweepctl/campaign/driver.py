@@ -1,0 +1,502 @@
+"""The driver: open the store, connect to Dask, run rounds of replicas, write results.
+
+The driver is the store's single writer. The Dask scheduler keeps no state across
+restarts, so resuming is: read the store, replay each point's round decisions from its
+complete replica prefixes (:mod:`sweepctl.campaign.progress`), and submit what is
+missing. Results stream back and are written in batches; Ctrl-C (or SIGTERM from a
+batch system) flushes what has arrived and stops; replicas in flight continue later
+from their checkpoints.
+
+A flush is not interrupted by a signal: the signal is noted and acted on when the
+flush has finished, and the rows to write are taken out of the buffer before they are
+written, so no row can be written twice.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import logging
+import math
+import os
+import signal
+import threading
+import time
+from collections.abc import Callable
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from pathlib import Path
+
+import numpy as np
+
+from sweepctl.campaign.connect import Connection, RunOptions
+from sweepctl.campaign.plan import (
+    CostModel,
+    Frozen,
+    ReplicaSpec,
+    check_compatible,
+    freeze,
+)
+from sweepctl.campaign.progress import PointProgress, RunPreview, preview_run
+from sweepctl.campaign.recipe import Recipe
+from sweepctl.campaign.store import CONVENTIONS, Store, StoreError, code_version
+
+__all__ = [
+    "Driver",
+    "PreparedCampaign",
+    "RunResult",
+    "prepare_campaign",
+    "run_campaign",
+]
+
+log = logging.getLogger("sweepctl")
+_MAX_ATTEMPTS = 20  # resubmissions of a replica whose workers keep dying
+_WORKER_LOSS = ("KilledWorker", "CommClosedError", "FutureCancelledError")
+
+
+@dataclass
+class RunResult:
+    points: int
+    done: int
+    capped: int
+    failed: int
+    computed: int
+    interrupted: bool
+    seconds: float
+
+
+def now_iso() -> str:
+    return datetime.now(UTC).isoformat(timespec="milliseconds")
+
+
+@dataclass
+class PreparedCampaign:
+    """The campaign record a run would write, and what the store held before."""
+
+    campaign: dict
+    frozen: Frozen
+    previous: tuple[Recipe, Frozen] | None
+    exists: bool
+
+
+def prepare_campaign(
+    recipe: Recipe,
+    store: Store,
+    source: str,
+    cost: CostModel | None,
+    default_seconds: float | None = None,
+) -> PreparedCampaign:
+    """Check ``recipe`` against the store and derive the campaign record; writes nothing.
+
+    Refused changes raise :class:`~sweepctl.campaign.recipe.RecipeError` — the same
+    message for ``run`` and for ``plan --store``.
+    """
+    kw = {} if default_seconds is None else {"default_seconds": default_seconds}
+    previous = None
+    if store.exists():
+        campaign = store.read_campaign()
+        old = Frozen.from_json(campaign["frozen"])
+        check_compatible(recipe, old, source)
+        frozen = freeze(recipe, cost, old, source=source, **kw)
+        hist = campaign.get("recipe_history") or []
+        if hist:
+            previous = (Recipe.from_canonical(hist[-1]["recipe"]), old)
+    else:
+        frozen = freeze(recipe, cost, None, source=source, **kw)
+        campaign = {
+            "format": 1,
+            "name": recipe.name,
+            "created": now_iso(),
+            "conventions": CONVENTIONS,
+            "code_at_creation": code_version(),
+            "recipe_history": [],
+        }
+    campaign["frozen"] = frozen.to_json()
+    campaign["target"] = recipe.target
+    campaign["initial"] = recipe.initial
+    campaign["checkpoint_seconds"] = recipe.checkpoint_seconds
+    pts = recipe.points()
+    campaign["points"] = [p.key for p in pts] if len(pts) <= 20000 else None
+    hist = campaign["recipe_history"]
+    digest = recipe.digest()
+    if not hist or hist[-1]["digest"] != digest:
+        hist.append(
+            {"digest": digest, "time": now_iso(), "source": source, "recipe": recipe.canonical()}
+        )
+    return PreparedCampaign(campaign, frozen, previous, store.exists())
+
+
+class Driver:
+    """One run of a campaign: replay, submit, result, error, flush.
+
+    ``report`` receives progress dicts (``kind`` = ``"start"``, ``"progress"``,
+    ``"log"``); the caller decides how to show them.
+    """
+
+    def __init__(
+        self,
+        recipe: Recipe,
+        store: Store,
+        source: str,
+        options: RunOptions,
+        cost: CostModel | None,
+        report: Callable[[dict], None] | None = None,
+    ) -> None:
+        self.recipe, self.store, self.source = recipe, store, source
+        self.options, self.cost = options, cost
+        self.say = report or (lambda _m: None)
+        self.progress: dict[str, PointProgress] = {}
+        self.frozen: Frozen | None = None
+        self.meta: dict = {}
+        self.conn: Connection | None = None
+        self.futures = None
+        self.inflight: dict[tuple[str, int], object] = {}
+        self.attempts: dict[tuple[str, int], int] = {}
+        self.observed: dict[int, list[float]] = {}
+        self.computed = 0
+        self.failed_points = 0
+        self.interrupted = False
+        self._events: list[dict] = []
+        self._events_lock = threading.Lock()
+        self._rows: list[dict] = []
+        self._checkpoints: list[Path] = []
+        self._last_flush = time.perf_counter()
+        self._in_flush = False
+        self._closing = False
+        self._stop_requested = False
+
+    # -- the run ------------------------------------------------------------------------
+    def run(self) -> RunResult:
+        t0 = time.perf_counter()
+        store = self.store
+        if not store.exists():
+            if store.foreign_entries():
+                raise StoreError(
+                    f"{store.root}: directory exists and is not a sweepctl store; "
+                    "choose an empty or new directory"
+                )
+            store.root.mkdir(parents=True, exist_ok=True)
+        with store.locked():
+            removed = store.cleanup()
+            preview = self.replay()
+            store.append_events(
+                [
+                    {
+                        "time": now_iso(),
+                        "event": "run-start",
+                        "pid": os.getpid(),
+                        "recipe": self.recipe.digest(),
+                        "stored_rows": preview.stored_rows,
+                        "removed_temporaries": [str(p) for p in removed],
+                        "preview": preview.to_json(),
+                    }
+                ]
+            )
+            todo = [pp for pp in self.progress.values() if not pp.finished]
+            self.say(
+                {
+                    "kind": "start",
+                    "points": len(self.progress),
+                    "todo": len(todo),
+                    "stored_rows": preview.stored_rows,
+                    "reopened": len(preview.reopened_points),
+                    "new": len(preview.new_points),
+                }
+            )
+            if not todo:
+                store.append_events([{"time": now_iso(), "event": "run-end", "computed": 0}])
+                return self._result(t0)
+            with self._signals():
+                try:
+                    self._connect()
+                    for pp in todo:
+                        self.submit(pp)
+                    self._say_progress()
+                    for fut in self.futures:
+                        if fut.status == "error":
+                            self.error(fut)
+                        else:
+                            self.result(fut)
+                except KeyboardInterrupt:
+                    if self.conn is not None and self.conn.fatal:
+                        self.failed_points += 1
+                        self.say({"kind": "log", "message": f"stopped: {self.conn.fatal}"})
+                        self._event({"event": "failed", "error": self.conn.fatal})
+                    else:
+                        self.interrupted = True
+                        self.say({"kind": "log", "message": "interrupted: saving what has arrived"})
+                finally:
+                    self._closing = True  # from here on a signal is only noted
+                    self.flush(final=True)
+                    store.append_events(
+                        [
+                            {
+                                "time": now_iso(),
+                                "event": "interrupted" if self.interrupted else "run-end",
+                                "computed": self.computed,
+                            }
+                        ]
+                    )
+                    if self.conn is not None:
+                        self.conn.close()
+        return self._result(t0)
+
+    def replay(self) -> RunPreview:
+        """Write the campaign record and rebuild every point's rounds from stored rows."""
+        prep = prepare_campaign(
+            self.recipe,
+            self.store,
+            self.source,
+            self.cost,
+            self.options.default_replica_seconds,
+        )
+        if prep.exists:
+            self.store.write_campaign(prep.campaign)
+        else:
+            self.store.create(prep.campaign)
+        self.frozen = prep.frozen
+        self.meta = {"name": prep.campaign["name"], "entropy": prep.campaign["frozen"]["entropy"]}
+        rows = self.store.read_replicas(columns=["point_key", "replica", "gamma_strips"])
+        preview, self.progress = preview_run(self.recipe, prep.frozen, rows, prep.previous)
+        return preview
+
+    def _connect(self) -> None:
+        from distributed import as_completed
+
+        self.conn = Connection(self.options)
+        self.conn.client.subscribe_topic("sweepctl", self._on_worker_event)
+        self.conn.on_event = lambda m: self._on_worker_event((None, m))
+        # written at once: whoever watches the store learns the worker processes early
+        self.store.append_events(
+            [
+                {
+                    "time": now_iso(),
+                    "event": "cluster",
+                    "kind": self.conn.kind,
+                    "workers": self.conn.worker_pids(),
+                }
+            ]
+        )
+        self.say({"kind": "log", "message": f"connected: {self.conn.kind}"})
+        self.futures = as_completed(with_results=False)
+
+    def submit(self, pp: PointProgress) -> None:
+        """Submit the replicas of ``pp``'s current round that are neither stored nor running."""
+        from sweepctl.campaign.worker import run_replica
+
+        frozen = self.frozen
+        for r in pp.missing():
+            k = (pp.point.key, r)
+            if k in self.inflight:
+                continue
+            spec = ReplicaSpec(
+                point=pp.point,
+                replica=r,
+                entropy=frozen.entropy,
+                layers=pp.layers,
+                warmup=pp.warmup,
+                strips=frozen.strips,
+                checkpoint=str(self.store.checkpoint_path(pp.point.short, r)),
+                checkpoint_seconds=self.recipe.checkpoint_seconds,
+            )
+            a = self.attempts.get(k, 0)
+            key = spec.key if a == 0 else f"{spec.key}-attempt{a}"
+            fut = self.conn.client.submit(run_replica, spec, key=key, pure=False)
+            fut.sweepctl = (pp, spec)  # type: ignore[attr-defined]
+            self.inflight[k] = fut
+            self.futures.add(fut)
+            self._event({"event": "submitted", "point": pp.point.key, "replica": r, "key": key})
+
+    def result(self, fut) -> None:
+        """A replica came back: buffer its row, advance its point's rounds."""
+        pp, spec = fut.sweepctl
+        self.inflight.pop((pp.point.key, spec.replica), None)
+        out = fut.result()
+        fut.release()
+        if spec.replica in pp.done:
+            return  # a duplicate delivery: keep the first
+        self._rows.append(out.row())
+        self._checkpoints.append(Path(spec.checkpoint))
+        pp.done[spec.replica] = np.asarray(out.gamma_strips)
+        self.computed += 1
+        self._event(
+            {
+                "event": "finished",
+                "point": pp.point.key,
+                "replica": spec.replica,
+                "worker": out.worker,
+                "wall_seconds": out.wall_seconds,
+            }
+        )
+        per = out.wall_seconds / max(1, (spec.layers + spec.warmup) * spec.strips)
+        self.observed.setdefault(pp.point.width, []).append(per)
+        before = pp.wanted
+        pp.decide()
+        if pp.wanted > before:
+            self.submit(pp)
+        if (
+            len(self._rows) >= self.options.flush_rows
+            or time.perf_counter() - self._last_flush >= self.options.flush_seconds
+        ):
+            self.flush()
+        self._say_progress()
+
+    def error(self, fut) -> None:
+        """A replica raised: resubmit after a worker loss, otherwise stop its point."""
+        pp, spec = fut.sweepctl
+        k = (pp.point.key, spec.replica)
+        self.inflight.pop(k, None)
+        exc = fut.exception()
+        name = type(exc).__name__
+        a = self.attempts.get(k, 0) + 1
+        self.attempts[k] = a
+        self._event(
+            {
+                "event": "failed",
+                "point": pp.point.key,
+                "replica": spec.replica,
+                "error": f"{name}: {exc}",
+                "attempt": a,
+            }
+        )
+        if name in _WORKER_LOSS and a < _MAX_ATTEMPTS:
+            self.submit(pp)  # worker loss: continue elsewhere from the checkpoint
+            return
+        pp.failed = True
+        pp.finished = True
+        self.failed_points += 1
+        self.say(
+            {
+                "kind": "log",
+                "message": f"replica {spec.replica} of {pp.point.label()} failed: {name}: {exc}",
+            }
+        )
+
+    def flush(self, final: bool = False) -> None:
+        """Write buffered rows as one part file, then remove their checkpoints.
+
+        Signals arriving meanwhile are held until the end (see :meth:`_signals`); the
+        rows are swapped out of the buffer first, so a flush can never store a row twice.
+        """
+        self._in_flush = True
+        try:
+            rows, self._rows = self._rows, []
+            cks, self._checkpoints = self._checkpoints, []
+            if rows:
+                try:
+                    self.store.write_replicas(rows, self.meta)
+                except BaseException:
+                    # write_replicas is atomic: nothing of this batch is stored; keep it
+                    self._rows = rows + self._rows
+                    self._checkpoints = cks + self._checkpoints
+                    raise
+                if os.environ.get("SWEEPCTL_FAULT") == "signal-in-flush":
+                    os.kill(os.getpid(), signal.SIGTERM)  # fault-injection hook for tests
+                for p in cks:
+                    with contextlib.suppress(OSError):
+                        p.unlink()
+            with self._events_lock:
+                batch, self._events = self._events, []
+            self.store.append_events(batch)
+            self._last_flush = time.perf_counter()
+        finally:
+            self._in_flush = False
+        if self._stop_requested and not final:
+            self._stop_requested = False
+            raise KeyboardInterrupt
+
+    # -- helpers ------------------------------------------------------------------------
+    @contextlib.contextmanager
+    def _signals(self):
+        """TERM (batch systems send it before KILL) and INT stop the run, but not mid-flush."""
+
+        def on_signal(signum, frame):
+            if self._in_flush or self._closing:
+                self._stop_requested = True
+                return
+            raise KeyboardInterrupt
+
+        old = {}
+        for sig in (signal.SIGTERM, signal.SIGINT):
+            with contextlib.suppress(ValueError):  # not the main thread
+                old[sig] = signal.signal(sig, on_signal)
+        try:
+            yield
+        finally:
+            for sig, handler in old.items():
+                with contextlib.suppress(ValueError, TypeError):
+                    signal.signal(sig, handler)
+
+    def _event(self, event: dict) -> None:
+        with self._events_lock:
+            self._events.append({"time": now_iso(), **event})
+
+    def _on_worker_event(self, event) -> None:
+        _, msg = event
+        if isinstance(msg, dict):
+            self._event(msg)
+
+    def _say_progress(self) -> None:
+        vals = self.progress.values()
+        self.say(
+            {
+                "kind": "progress",
+                "done": sum(len(pp.done) for pp in vals),
+                "total": sum(pp.wanted for pp in vals),
+                "computed": self.computed,
+                "eta": _eta(
+                    self.progress,
+                    self.frozen,
+                    self.cost,
+                    self.observed,
+                    self.conn.n_workers() if self.conn else 1,
+                ),
+            }
+        )
+
+    def _result(self, t0: float) -> RunResult:
+        vals = list(self.progress.values())
+        failed = sum(1 for p in vals if p.failed)
+        return RunResult(
+            points=len(vals),
+            done=sum(1 for p in vals if p.finished and not p.failed),
+            capped=sum(1 for p in vals if p.capped),
+            failed=failed or self.failed_points,
+            computed=self.computed,
+            interrupted=self.interrupted,
+            seconds=time.perf_counter() - t0,
+        )
+
+
+def run_campaign(
+    recipe: Recipe,
+    store: Store,
+    source: str,
+    options: RunOptions,
+    cost: CostModel | None,
+    report: Callable[[dict], None] | None = None,
+) -> RunResult:
+    """Run (or continue) a campaign until every point is done or capped."""
+    return Driver(recipe, store, source, options, cost, report).run()
+
+
+def _eta(progress, frozen, cost, observed: dict[int, list[float]], workers) -> float | None:
+    """Seconds left for the current rounds: observed seconds per strip-layer per width
+    (the calibration, or another width scaled as N², where none is observed yet)."""
+    if not observed and cost is None:
+        return None
+    mean_obs = {n: float(np.mean(v)) for n, v in observed.items() if v}
+
+    def spl(n: int) -> float:
+        if n in mean_obs:
+            return mean_obs[n]
+        if cost is not None:
+            return cost.seconds_per_strip_layer(n)
+        m, v = min(mean_obs.items(), key=lambda kv: abs(kv[0] - n))
+        return v * (n / m) ** 2
+
+    secs = 0.0
+    for pp in progress.values():
+        if pp.finished:
+            continue
+        secs += len(pp.missing()) * (pp.layers + pp.warmup) * frozen.strips * spl(pp.point.width)
+    return secs / max(1, workers) if math.isfinite(secs) else None
