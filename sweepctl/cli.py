@@ -145,6 +145,13 @@ def plan(
     recipe: RecipeArg,
     json_out: Annotated[bool, typer.Option("--json", help="Print the plan as JSON.")] = False,
     calibration: CalibrationOpt = None,
+    store: Annotated[
+        Path | None,
+        typer.Option(
+            "--store",
+            help="Preview what `run` would do on this store (new and reopened points).",
+        ),
+    ] = None,
 ) -> None:
     """Points, replicas, seeds and estimated cost of a recipe (nothing is run)."""
     from sweepctl.bench import cost_model
@@ -153,7 +160,14 @@ def plan(
     rec = load_recipe_or_fail(recipe)
     with console.status("calibrating the kernel…") if not json_out else _null():
         cost, origin = cost_model(list(rec.widths), calibration)
-    pl = make_plan(rec, cost, origin)
+    frozen = preview = None
+    if store is not None:
+        from sweepctl.campaign.plan_store import preview_on_store
+
+        frozen, preview = preview_on_store(rec, store, str(recipe), cost)
+    pl = make_plan(rec, cost, origin, frozen)
+    if preview is not None:
+        pl["store"] = {"path": str(store), **preview.to_json()}
     if json_out:
         print(json.dumps(pl, indent=2))
         return
@@ -189,6 +203,13 @@ def plan(
     )
     console.print(f"seeds: {pl['seed_scheme']}")
     console.print(f"suggested: {pl['suggestion']}")
+    if preview is not None:
+        console.print(
+            f"on {store}: {preview.stored_rows:,} replicas stored; a run would submit "
+            f"{preview.replicas_to_submit:,} replicas for {preview.todo_points} points "
+            f"({len(preview.new_points)} new, {len(preview.reopened_points)} reopened by "
+            "the recipe's target or cap), before any further rounds"
+        )
 
 
 class _null:

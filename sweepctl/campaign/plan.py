@@ -356,9 +356,15 @@ def expected_replicas(width: int, target: float, layers: int, strips: int, cap: 
     return int(min(cap, max(1, math.ceil(strip_layers / (layers * strips)))))
 
 
-def make_plan(recipe: Recipe, cost: CostModel, cost_source: str) -> dict:
-    """The plan of a recipe as plain data (what ``sweepctl plan`` shows)."""
-    fz = freeze(recipe, cost, None)
+def make_plan(
+    recipe: Recipe, cost: CostModel, cost_source: str, frozen: Frozen | None = None
+) -> dict:
+    """The plan of a recipe as plain data (what ``sweepctl plan`` shows).
+
+    ``frozen``: the settings of an existing store (``plan --store``); by default those
+    a new store would get.
+    """
+    fz = frozen if frozen is not None else freeze(recipe, cost, None)
     points = recipe.points()
     by_width: dict[int, int] = {}
     for p in points:

@@ -32,8 +32,8 @@ import hashlib
 import json
 import math
 import tomllib
-from decimal import Decimal, localcontext
 from dataclasses import dataclass
+from decimal import Decimal, localcontext
 from pathlib import Path
 from typing import Any
 
@@ -271,7 +271,10 @@ def _couplings(src: str, v: Any) -> tuple[float, ...]:
         for k, val in (("start", a), ("stop", b)):
             if abs(val) > _MAX_COUPLING:
                 raise RecipeError(
-                    f"{field}.{k}", v[k], f"|x| > {_MAX_COUPLING:g} is outside any useful range", src
+                    f"{field}.{k}",
+                    v[k],
+                    f"|x| > {_MAX_COUPLING:g} is outside any useful range",
+                    src,
                 )
         xs = _decimal_range(a, b, n)
         cx = [canonical_float(x) for x in xs]

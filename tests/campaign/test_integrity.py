@@ -35,7 +35,7 @@ def test_a_duplicated_part_file_changes_nothing_and_audit_names_it(reference_sto
     after = merged(store, drop_timing=False)
     # every number of the per-point table is unchanged, bit for bit (cpu_hours included)
     pd_equal = before.equals(after)
-    assert pd_equal, (before.compare(after) if before.shape == after.shape else after)
+    assert pd_equal, before.compare(after) if before.shape == after.shape else after
     assert cli("status", store, "--json").stdout == status_before
     proc = cli("audit", store)
     assert proc.returncode == 0, proc.stdout
@@ -124,7 +124,7 @@ def test_two_drivers_taking_over_a_dead_drivers_lock_never_overlap(tmp_path):
     import json
     import socket
 
-    from tests.campaign.helpers import start_cli, worker_pids, kill_pids
+    from tests.campaign.helpers import kill_pids, start_cli, worker_pids
     from tests.campaign.test_faults import FAULT
 
     recipe = write_recipe(tmp_path / "recipe.toml", {**FAULT, "axes": {"widths": [2]}})

@@ -30,6 +30,11 @@ BAD = [
         "axes.couplings",
     ),
     ("couplings-duplicate", {"axes": {"couplings": [0.1, 0.1]}}, "axes.couplings"),
+    (
+        "couplings-range-out-of-bounds",
+        {"axes": {"couplings": {"start": -20.0, "stop": 0.0, "num": 3}}},
+        "axes.couplings.start",
+    ),
     ("coupling-not-number", {"axes": {"couplings": ["zero"]}}, "axes.couplings[0]"),
     ("p-above-one", {"axes": {"disorder": [{"p": 1.5}]}}, "axes.disorder[0].p"),
     (
