@@ -535,12 +535,24 @@ def audit(
         with console.status(f"recomputing {recompute_n} replicas…"):
             rep.recomputed = recompute(st, recompute_n, seed, sel)
         for r in rep.recomputed:
-            mark = "identical" if r["identical"] else "MISMATCH"
-            console.print(
-                f"  {mark}: {r['point_key']} replica {r['replica']} "
-                f"(stored Γ {r['stored_Gamma']:.12g}, recomputed {r['recomputed_Gamma']:.12g})",
-                highlight=False,
-            )
+            what = f"{r['point_key']} replica {r['replica']}"
+            if r["verdict"] == "bit-identical":
+                line = f"  bit-identical: {what}"
+            elif r["verdict"] == "last-bits":
+                line = (
+                    f"  differs in the last bits (other build or CPU): {what}, max relative "
+                    f"difference {r['max_rel_diff']:.1e} (stored by {r['stored_code']}; "
+                    f"here {r['current_code']})"
+                )
+            else:
+                line = (
+                    f"  MISMATCH: {what}: max relative difference {r['max_rel_diff']:.1e} "
+                    f"(stored Γ {r['stored_Gamma']:.12g}, recomputed "
+                    f"{r['recomputed_Gamma']:.12g}"
+                    + ("" if r["same_build"] else f"; stored by {r['stored_code']}")
+                    + ")"
+                )
+            console.print(line, highlight=False)
     if not rep.ok:
         console.print("audit FAILED")
         raise typer.Exit(1)

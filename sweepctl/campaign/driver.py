@@ -318,6 +318,13 @@ class Driver:
         self._checkpoints.append(Path(spec.checkpoint))
         pp.done[spec.replica] = np.asarray(out.gamma_strips)
         self.computed += 1
+        for note in out.notes:
+            self._event(
+                {"event": "note", "point": pp.point.key, "replica": spec.replica, "note": note}
+            )
+            self.say(
+                {"kind": "log", "message": f"{pp.point.label()} replica {spec.replica}: {note}"}
+            )
         self._event(
             {
                 "event": "finished",

@@ -49,9 +49,10 @@ __all__ = [
     "StoreLocked",
     "atomic_write_bytes",
     "code_version",
+    "cpu_identity",
 ]
 
-SCHEMA_VERSION = "replicas/1"
+SCHEMA_VERSION = "replicas/2"
 CONVENTIONS = (
     "Chalker-Coddington strip, N nodes per column, 2N links, periodic; exponents per layer; "
     "Gamma = N * gamma (smallest positive exponent); gamma_strips holds Gamma per strip; "
@@ -88,9 +89,16 @@ REPLICA_SCHEMA = pa.schema(
         ("sweepctl_version", pa.string()),
         ("git_commit", pa.string()),
         ("numpy_version", pa.string()),
+        # replicas/2: the rest of the build a result's bits depend on
+        ("numba_version", pa.string()),
+        ("cpu", pa.string()),
     ],
     metadata={"sweepctl.schema": SCHEMA_VERSION, "sweepctl.conventions": CONVENTIONS},
 )
+#: Columns added after ``replicas/1``: part files written before them read as null.
+ADDED_COLUMNS = ("numba_version", "cpu")
+#: What a result's bits depend on besides its seed (compared by resume and audit).
+BUILD_COLUMNS = ("sweepctl_version", "git_commit", "numpy_version", "numba_version", "cpu")
 
 
 class StoreError(SweepctlError, RuntimeError):
@@ -148,8 +156,36 @@ class ReplicaRows:
 
 
 @lru_cache(maxsize=1)
+def cpu_identity() -> str:
+    """The CPU family a result's last bits depend on.
+
+    numba compiles the layer loop for the host CPU (instruction set, FMA contraction)
+    and OpenBLAS picks CPU-specific LAPACK/BLAS kernels (the QR), so results are
+    bit-identical only within one such family: ``"<llvm host cpu>/<blas>:<kernel>…"``.
+    """
+    parts = []
+    with contextlib.suppress(Exception):
+        import llvmlite.binding as llb
+
+        parts.append(llb.get_host_cpu_name())
+    with contextlib.suppress(Exception):
+        import scipy.linalg  # noqa: F401  (loads the LAPACK the kernel's QR calls)
+        from threadpoolctl import threadpool_info
+
+        parts += sorted(
+            {
+                f"{i.get('internal_api')}:{i.get('architecture')}"
+                for i in threadpool_info()
+                if i.get("architecture")
+            }
+        )
+    return "/".join(parts) or "unknown"
+
+
+@lru_cache(maxsize=1)
 def code_version() -> dict[str, str]:
-    """sweepctl version and, for a git checkout, its commit (``-dirty`` if modified)."""
+    """The build behind a result: sweepctl version and git commit (``-dirty`` if
+    modified), NumPy and numba versions, and the CPU family (:func:`cpu_identity`)."""
     here = Path(__file__).resolve().parent
     commit = "unknown"
     try:
@@ -171,12 +207,15 @@ def code_version() -> dict[str, str]:
             commit += "-dirty"
     except (OSError, subprocess.SubprocessError):
         pass
+    import numba
     import numpy
 
     return {
         "sweepctl_version": __version__,
         "git_commit": commit,
         "numpy_version": numpy.__version__,
+        "numba_version": numba.__version__,
+        "cpu": cpu_identity(),
     }
 
 
@@ -559,7 +598,13 @@ _RESULT_SCHEMA = pa.schema([REPLICA_SCHEMA.field(c) for c in RESULT_COLUMNS])
 def _read_part(path: Path, columns: list[str] | None, want: pa.Schema) -> pa.Table:
     """One part file read and cast to the pinned schema (``want``, in its column order)."""
     try:
-        table = pq.ParquetFile(path).read(columns=columns)
+        pf = pq.ParquetFile(path)
+        have = set(pf.schema_arrow.names)
+        added = [c for c in want.names if c not in have and c in ADDED_COLUMNS]
+        cols = [c for c in want.names if c not in added]
+        table = pf.read(columns=cols)
+        for c in added:  # written before the column existed
+            table = table.append_column(want.field(c), pa.nulls(table.num_rows, pa.string()))
         table = table.select(want.names)
         return table if table.schema.equals(want) else table.cast(want)
     except (OSError, KeyError, ValueError, pa.ArrowException) as exc:

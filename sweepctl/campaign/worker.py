@@ -14,14 +14,14 @@ import os
 import socket
 import struct
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
 
 from sweepctl.campaign.plan import ReplicaSpec, replica_seed
-from sweepctl.campaign.store import atomic_write_bytes, code_version
+from sweepctl.campaign.store import BUILD_COLUMNS, atomic_write_bytes, code_version
 from sweepctl.kernel import NetworkModel, StripState
 
 __all__ = ["ReplicaOutput", "compute_replica", "read_checkpoint", "run_replica"]
@@ -57,6 +57,8 @@ class ReplicaOutput:
     started: datetime
     finished: datetime
     code: dict
+    #: what the worker wants logged (e.g. a checkpoint of another build discarded)
+    notes: list[str] = field(default_factory=list)
 
     def row(self) -> dict:
         """The replica row of the store's pinned schema."""
@@ -98,28 +100,41 @@ def _start_state(spec: ReplicaSpec) -> StripState:
     return StripState.start(model, strips=spec.strips, seed=seed, warmup=spec.warmup)
 
 
-def read_checkpoint(path: Path, spec: ReplicaSpec) -> tuple[StripState, dict] | None:
-    """A checkpoint of exactly this computation, or ``None`` (absent, foreign, damaged)."""
+def read_checkpoint(path: Path, spec: ReplicaSpec) -> tuple[StripState | None, dict, str]:
+    """The checkpoint of exactly this computation on this build.
+
+    Returns ``(state, header, "")`` to resume, or ``(None, {}, why)`` when there is
+    nothing to resume: ``why`` is ``""`` for an absent, foreign or damaged file and
+    says which build wrote it when another build did — its bits would mix with this
+    build's (see :func:`~sweepctl.campaign.store.code_version`), so the replica starts
+    again from layer 0 rather than silently continuing.
+    """
     try:
         data = path.read_bytes()
     except OSError:
-        return None
+        return None, {}, ""
     try:
         if not data.startswith(_MAGIC):
-            return None
+            return None, {}, ""
         (n,) = struct.unpack("<I", data[len(_MAGIC) : len(_MAGIC) + 4])
         off = len(_MAGIC) + 4
         header = json.loads(data[off : off + n])
         if header.get("digest") != spec.digest():
-            return None
-        return StripState.from_bytes(data[off + n :]), header
+            return None, {}, ""
+        here = code_version()
+        built = header.get("build") or {}
+        diff = [k for k in BUILD_COLUMNS if built.get(k) != here[k]]
+        if diff:
+            what = ", ".join(f"{k} {built.get(k)!r} (here {here[k]!r})" for k in diff)
+            return None, {}, f"checkpoint written by another build: {what}"
+        return StripState.from_bytes(data[off + n :]), header, ""
     except (ValueError, KeyError, struct.error, OSError):
-        return None
+        return None, {}, ""
 
 
 def _write_checkpoint(path: Path, spec: ReplicaSpec, state: StripState, header: dict) -> None:
     path.parent.mkdir(parents=True, exist_ok=True)
-    head = json.dumps({**header, "digest": spec.digest()}).encode()
+    head = json.dumps({**header, "digest": spec.digest(), "build": code_version()}).encode()
     atomic_write_bytes(path, _MAGIC + struct.pack("<I", len(head)) + head + state.to_bytes())
 
 
@@ -132,16 +147,20 @@ def compute_replica(spec: ReplicaSpec, *, use_checkpoint: bool = True) -> Replic
     ck = Path(spec.checkpoint) if (use_checkpoint and spec.checkpoint) else None
     prior_cpu = prior_wall = 0.0
     resumed_at = 0
-    found = read_checkpoint(ck, spec) if ck is not None else None
+    found, header, why = read_checkpoint(ck, spec) if ck is not None else (None, {}, "")
+    notes = [why] if why else []
     if found is not None:
-        state, header = found
+        state = found
         prior_cpu = float(header.get("cpu_seconds", 0.0))
         prior_wall = float(header.get("wall_seconds", 0.0))
         resumed_at = state.layers_done
         _log_event("resumed", spec, layers=resumed_at)
     else:
         state = _start_state(spec)
-        _log_event("started", spec)
+        if why:
+            _log_event("restarted", spec, reason=why)
+        else:
+            _log_event("started", spec)
     total = spec.warmup + spec.layers
     last_ck = time.perf_counter()
     # Steps of a fraction of a second keep checkpoints on time without slowing the kernel.
@@ -179,6 +198,7 @@ def compute_replica(spec: ReplicaSpec, *, use_checkpoint: bool = True) -> Replic
         started=started,
         finished=datetime.now(UTC),
         code=code_version(),
+        notes=notes,
     )
 
 

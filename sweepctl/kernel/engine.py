@@ -333,12 +333,25 @@ class StripState:
         return buf.getvalue()
 
     @classmethod
-    def from_bytes(cls, data: bytes) -> StripState:
-        """Inverse of :meth:`to_bytes`."""
+    def from_bytes(cls, data: bytes, *, allow_other_build: bool = False) -> StripState:
+        """Inverse of :meth:`to_bytes`.
+
+        A state written by another sweepctl or NumPy version is refused unless
+        ``allow_other_build``: NumPy guarantees its streams only within one build, and
+        the compiled kernel's rounding may differ, so continuing it would mix two
+        builds' bits in one result.
+        """
         with np.load(io.BytesIO(data), allow_pickle=False) as z:
             meta = json.loads(z["meta"].tobytes().decode())
             if meta.get("format") != _STATE_FORMAT:
                 raise ValueError(f"unsupported strip-state format {meta.get('format')!r}")
+            theirs = (meta.get("sweepctl_version"), meta.get("numpy_version"))
+            if not allow_other_build and theirs != (__version__, np.__version__):
+                raise ValueError(
+                    f"strip state written by sweepctl {theirs[0]} with numpy {theirs[1]}; "
+                    f"this is sweepctl {__version__} with numpy {np.__version__}: start the "
+                    "strips afresh, or pass allow_other_build=True to continue anyway"
+                )
             bg_state = meta["bit_generator"]
             if bg_state["bit_generator"] != "PCG64":
                 raise ValueError(f"unsupported bit generator {bg_state['bit_generator']!r}")
