@@ -1,5 +1,13 @@
 """Kernel throughput on this machine (one BLAS thread), for tables and cost estimates.
 
+The cost of a strip-layer is ``c + q·t_QR``: ``c`` the node columns, phases and
+draws of one layer (measured on the clean network and, separately, with node
+disorder, which draws 2N more variates), ``q`` the QRs per layer that the
+re-orthogonalisation schedule does for the point (:func:`~sweepctl.kernel.schedule.
+expected_qr_per_layer`: 1/8 on the clean network at x = 0, ≈ 2 with blocking nodes)
+and ``t_QR`` one QR of one strip's frame, timed on its own. Calibrating the parts
+separately is what lets one calibration price every disorder, ε and coupling.
+
 Flop counts are nominal (complex multiply 6, complex add 2): per layer and strip a
 node update costs ``48 N M`` (two columns of ``N`` pairs on ``M`` frame columns,
 node block and phase) and a Householder QR with explicit ``Q`` of a ``2N × M``
@@ -9,6 +17,7 @@ frame ``8 (4 N M² − 2 M³/3)`` per re-orthogonalisation.
 from __future__ import annotations
 
 import json
+import math
 import os
 import platform
 import time
@@ -33,51 +42,93 @@ __all__ = [
 
 @dataclass(frozen=True)
 class BenchRow:
-    """Throughput at one width."""
+    """Throughput and cost parts at one width."""
 
     width: int
     strips: int
     layers: int
     seconds: float
-    layers_per_second: float  # per strip
+    layers_per_second: float  # per strip, clean network at x = 0
     strip_layers_per_second: float  # summed over strips
     qr_per_layer: float
     gflops: float
+    #: seconds per strip and layer for everything but the QRs, clean network
+    column_seconds: float = math.nan
+    #: the same with node disorder (p_block = p_open = 1/3, ε = 1e-6)
+    column_seconds_disorder: float = math.nan
+    #: seconds of one QR of one strip's 2N × N frame
+    qr_seconds: float = math.nan
+    #: strip-layers per second with that node disorder (QR after nearly every column)
+    strip_layers_per_second_disorder: float = math.nan
 
     def as_dict(self) -> dict:
         """Plain dict for JSON."""
         return asdict(self)
 
 
+def _timed_run(model, strips: int, seconds: float) -> tuple[int, float, int]:
+    """(layers, seconds, QRs) of an advance sized to last about ``seconds``."""
+    from sweepctl.kernel import StripState
+
+    state = StripState.start(model, strips=strips, seed=0, warmup=0)
+    t0 = time.perf_counter()
+    state.advance(16)
+    calib = 16
+    while time.perf_counter() - t0 < 0.1 * seconds:
+        state.advance(calib)
+        calib *= 2
+    rate = (2 * calib - 16) / max(time.perf_counter() - t0, 1e-9)
+    layers = max(16, int(rate * seconds))
+    qr_before = state.reorthogonalisations
+    t0 = time.perf_counter()
+    state.advance(layers)
+    return layers, time.perf_counter() - t0, state.reorthogonalisations - qr_before
+
+
+def _qr_seconds(width: int, strips: int, seconds: float) -> float:
+    """Seconds of one QR of one strip's frame (the engine's own QR call, warm cache)."""
+    from sweepctl.kernel._qr import reorthogonalise
+
+    rng = np.random.default_rng(1)
+    shape = (strips, 2 * width, width)
+    frame = rng.standard_normal(shape) + 1j * rng.standard_normal(shape)
+    reorthogonalise(frame)
+    reps, t = 1, 0.0
+    while True:
+        t0 = time.perf_counter()
+        for _ in range(reps):
+            reorthogonalise(frame)
+        t = time.perf_counter() - t0
+        if t >= 0.2 * seconds or reps >= 1 << 16:
+            break
+        reps *= 4
+    return t / (reps * strips)
+
+
 def bench_widths(
     widths: list[int], strips: int = 8, seconds: float = 1.0, x: float = 0.0
 ) -> list[BenchRow]:
-    """Measure layers per second at each width for about ``seconds`` each.
+    """Measure throughput and the cost parts at each width for about ``seconds`` each.
 
-    A short calibration run sizes the timed run; compilation and warm-up are
+    A short calibration run sizes each timed run; compilation and warm-up are
     excluded. The BLAS is limited to one thread for the measurement.
     """
     # Imported here: the driver needs only the stored calibration, not the compiled kernel.
-    from sweepctl.kernel import NetworkModel, StripState
+    from sweepctl.kernel import NetworkModel
 
     rows = []
     with threadpool_limits(1):
         for n in widths:
-            model = NetworkModel(int(n), x)
-            state = StripState.start(model, strips=strips, seed=0, warmup=0)
-            t0 = time.perf_counter()
-            state.advance(16)
-            calib = 16
-            while time.perf_counter() - t0 < 0.1 * seconds:
-                state.advance(calib)
-                calib *= 2
-            rate = (2 * calib - 16) / max(time.perf_counter() - t0, 1e-9)
-            layers = max(16, int(rate * seconds))
-            qr_before = state.reorthogonalisations
-            t0 = time.perf_counter()
-            state.advance(layers)
-            dt = time.perf_counter() - t0
-            n_qr = state.reorthogonalisations - qr_before
+            t_qr = _qr_seconds(int(n), strips, seconds)
+            layers, dt, n_qr = _timed_run(NetworkModel(int(n), x), strips, seconds)
+            dis = NetworkModel(int(n), x, 1.0 / 3.0, 1.0 / 3.0, 1e-6)
+            layers_d, dt_d, n_qr_d = _timed_run(dis, strips, 0.5 * seconds)
+            # what is not QR; never below a tenth of the whole (timer noise at tiny N)
+            col = max((dt - n_qr * strips * t_qr) / (strips * layers), 0.1 * dt / (strips * layers))
+            col_d = max(
+                (dt_d - n_qr_d * strips * t_qr) / (strips * layers_d),
+                0.1 * dt_d / (strips * layers_d),
+            )
             m = n
             flops = strips * (layers * 48.0 * n * m + n_qr * 8.0 * (4 * n * m * m - 2 * m**3 / 3))
             rows.append(
@@ -90,6 +141,10 @@ def bench_widths(
                     strip_layers_per_second=strips * layers / dt,
                     qr_per_layer=n_qr / layers,
                     gflops=flops / dt / 1e9,
+                    column_seconds=col,
+                    column_seconds_disorder=col_d,
+                    qr_seconds=t_qr,
+                    strip_layers_per_second_disorder=strips * layers_d / dt_d,
                 )
             )
     return rows
@@ -123,6 +178,10 @@ def machine_info() -> dict:
     }
 
 
+#: 2: cost parts (columns, QR) per width; format 1 had throughput only
+CALIBRATION_FORMAT = 2
+
+
 def calibration_path() -> Path:
     """Where ``sweepctl`` keeps this machine's calibration (XDG cache directory)."""
     base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
@@ -133,6 +192,7 @@ def calibration_payload(rows: list[BenchRow], gemm: float | None = None) -> dict
     """The JSON document ``sweepctl bench --json`` writes and cost models read."""
     return {
         "kind": "sweepctl-kernel-calibration",
+        "format": CALIBRATION_FORMAT,
         "machine": machine_info(),
         "zgemm_gflops": gemm,
         "widths": [r.as_dict() for r in rows],
@@ -140,18 +200,20 @@ def calibration_payload(rows: list[BenchRow], gemm: float | None = None) -> dict
 
 
 def cost_model(widths: list[int], path: str | Path | None = None, measure: bool = True):
-    """A :class:`~sweepctl.campaign.plan.CostModel` and where it came from.
+    """A :class:`~sweepctl.campaign.cost.CostModel` and where it came from.
 
     ``path`` (a ``sweepctl bench --json`` file) wins; then this machine's cached
     calibration; otherwise a short measurement at ``widths`` (saved to the cache).
     Returns ``(None, reason)`` when nothing is stored and ``measure`` is false.
     """
-    from sweepctl.campaign.plan import CostModel
+    from sweepctl.campaign.cost import CostModel
 
     if path is not None:
         p = Path(path)
         try:
             data = json.loads(p.read_text())
+            if data.get("format") != CALIBRATION_FORMAT:
+                raise ValueError("made by an older sweepctl, without the cost parts")
             return CostModel(data["widths"]), f"calibration {p}"
         except (OSError, ValueError, KeyError, TypeError) as exc:
             raise SweepctlError(
@@ -162,7 +224,8 @@ def cost_model(widths: list[int], path: str | Path | None = None, measure: bool 
     if cached.exists():
         try:
             data = json.loads(cached.read_text())
-            return CostModel(data["widths"]), f"calibration {cached}"
+            if data.get("format") == CALIBRATION_FORMAT:  # an older one is measured again
+                return CostModel(data["widths"]), f"calibration {cached}"
         except (OSError, ValueError, KeyError, TypeError):
             pass
     if not measure:

@@ -85,8 +85,17 @@ def bench(
     with console.status("compiling the kernel and measuring…"):
         rows = bench_widths(ws, strips=strips, seconds=seconds)
         gemm = zgemm_gflops()
-    table = Table(title=f"sweepctl bench — {strips} strips, one BLAS thread, x = 0, p = 0")
-    for col in ("N", "layers/s per strip", "strip-layers/s", "QR per layer", "GFLOP/s"):
+    table = Table(title=f"sweepctl bench — {strips} strips, one BLAS thread, x = 0")
+    for col in (
+        "N",
+        "layers/s per strip",
+        "strip-layers/s",
+        "QR per layer",
+        "GFLOP/s",
+        "strip-layers/s, p = 1/3",
+        "column µs",
+        "QR µs",
+    ):
         table.add_column(col, justify="right")
     for r in rows:
         table.add_row(
@@ -95,9 +104,16 @@ def bench(
             f"{r.strip_layers_per_second:,.0f}",
             f"{r.qr_per_layer:.3f}",
             f"{r.gflops:.2f}",
+            f"{r.strip_layers_per_second_disorder:,.0f}",
+            f"{1e6 * r.column_seconds:.2f}",
+            f"{1e6 * r.qr_seconds:.2f}",
         )
     console.print(table)
     console.print(f"complex matrix multiply (zgemm 512, one thread): {gemm:.1f} GFLOP/s")
+    console.print(
+        "p = 1/3: p_block = p_open = 1/3, ε = 1e-6; column µs: one layer without its QRs, per "
+        "strip; QR µs: one QR of one strip's frame"
+    )
     if json_out is not None:
         payload = calibration_payload(rows, gemm)
         try:
@@ -174,6 +190,9 @@ def plan(
     t = Table(title=f"plan for {rec.name!r}: {pl['points']} points")
     for c in (
         "N",
+        "p_block",
+        "p_open",
+        "ε",
         "points",
         "replica layers",
         "warm-up",
@@ -187,6 +206,9 @@ def plan(
     for g in pl["widths"]:
         t.add_row(
             str(g["N"]),
+            f"{g['p_block']:g}",
+            f"{g['p_open']:g}",
+            f"{g['epsilon']:g}",
             str(g["points"]),
             f"{g['replica_layers']:,}",
             str(g["warmup"]),

@@ -35,6 +35,7 @@ from sweepctl.campaign.plan import (
     ReplicaSpec,
     check_compatible,
     freeze,
+    slice_key,
 )
 from sweepctl.campaign.progress import PointProgress, RunPreview, preview_run
 from sweepctl.campaign.recipe import Recipe
@@ -151,7 +152,7 @@ class Driver:
         self.futures = None
         self.inflight: dict[tuple[str, int], object] = {}
         self.attempts: dict[tuple[str, int], int] = {}
-        self.observed: dict[int, list[float]] = {}
+        self.observed: dict[str, list[float]] = {}
         self.computed = 0
         self.failed_points = 0
         self.interrupted = False
@@ -335,7 +336,7 @@ class Driver:
             }
         )
         per = out.wall_seconds / max(1, (spec.layers + spec.warmup) * spec.strips)
-        self.observed.setdefault(pp.point.width, []).append(per)
+        self.observed.setdefault(slice_key(pp.point), []).append(per)
         before = pp.wanted
         pp.decide()
         if pp.wanted > before:
@@ -486,24 +487,37 @@ def run_campaign(
     return Driver(recipe, store, source, options, cost, report).run()
 
 
-def _eta(progress, frozen, cost, observed: dict[int, list[float]], workers) -> float | None:
-    """Seconds left for the current rounds: observed seconds per strip-layer per width
-    (the calibration, or another width scaled as N², where none is observed yet)."""
+def _eta(progress, frozen, cost, observed: dict[str, list[float]], workers) -> float | None:
+    """Seconds left for the current rounds.
+
+    Per slice: the seconds per strip-layer observed this run where there are some;
+    elsewhere the cost model's price scaled by how the observed slices compare with it
+    (the workers need not be the calibrated machine); without a model, the nearest
+    observed width scaled as N².
+    """
     if not observed and cost is None:
         return None
-    mean_obs = {n: float(np.mean(v)) for n, v in observed.items() if v}
+    mean_obs = {k: float(np.mean(v)) for k, v in observed.items() if v}
+    first = {}
+    for pp in progress.values():
+        first.setdefault(slice_key(pp.point), pp.point)
+    ratio = 1.0
+    if cost is not None and mean_obs:
+        ratios = [v / cost.point_seconds(first[k], frozen.strips) for k, v in mean_obs.items()]
+        ratio = float(np.median(ratios))
 
-    def spl(n: int) -> float:
-        if n in mean_obs:
-            return mean_obs[n]
+    def spl(point) -> float:
+        k = slice_key(point)
+        if k in mean_obs:
+            return mean_obs[k]
         if cost is not None:
-            return cost.seconds_per_strip_layer(n)
-        m, v = min(mean_obs.items(), key=lambda kv: abs(kv[0] - n))
-        return v * (n / m) ** 2
+            return ratio * cost.point_seconds(point, frozen.strips)
+        near = min(mean_obs, key=lambda q: abs(first[q].width - point.width))
+        return mean_obs[near] * (point.width / first[near].width) ** 2
 
     secs = 0.0
     for pp in progress.values():
         if pp.finished:
             continue
-        secs += len(pp.missing()) * (pp.layers + pp.warmup) * frozen.strips * spl(pp.point.width)
+        secs += len(pp.missing()) * (pp.layers + pp.warmup) * frozen.strips * spl(pp.point)
     return secs / max(1, workers) if math.isfinite(secs) else None

@@ -29,6 +29,7 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 
+from sweepctl.campaign.cost import CostModel
 from sweepctl.campaign.recipe import Point, Recipe, RecipeError
 
 __all__ = [
@@ -42,6 +43,7 @@ __all__ = [
     "next_target",
     "relative_error",
     "replica_seed",
+    "slice_key",
 ]
 
 #: relative error of Γ ≈ √(c·N/(Γ·L)) for L measured strip-layers (c ≈ 0.6–0.8 near
@@ -62,34 +64,54 @@ def replica_seed(entropy: int, point: Point, replica: int) -> np.random.SeedSequ
     return np.random.SeedSequence(entropy, spawn_key=(*point.key_ints, int(replica)))
 
 
+def slice_key(point: Point) -> str:
+    """Key of the point's (width, disorder, ε) slice in :class:`Frozen`'s tables."""
+    return f"N={point.width}|pb={point.p_block!r}|po={point.p_open!r}|eps={point.epsilon!r}"
+
+
 @dataclass
 class Frozen:
     """Settings fixed when a store is created (or a width first appears) and kept.
 
-    ``replica_layers`` and ``max_layers`` are per width (a duration or CPU-hour budget
-    in the recipe is converted once, with this machine's calibration, so that results
-    never depend on machine speed afterwards).
+    ``replica_layers`` and ``max_layers`` are keyed by width (layers given in the recipe,
+    and stores made before per-slice keys) or by :func:`slice_key` (a duration or
+    CPU-hour budget, converted once per slice with this machine's calibration — the
+    cost depends on disorder and ε as much as on N — so that results never depend on
+    machine speed afterwards). A slice key wins over its width's key.
     """
 
     entropy: int
     strips: int
     warmup: int | None
-    replica_layers: dict[int, int] = field(default_factory=dict)
-    max_layers: dict[int, int] = field(default_factory=dict)
+    replica_layers: dict[int | str, int] = field(default_factory=dict)
+    max_layers: dict[int | str, int] = field(default_factory=dict)
     replica_rule: dict = field(default_factory=dict)  # what the recipe said, for checks
     #: the cap as the recipe gave it (``max_layers`` / ``max_cpu_hours``): a change of
-    #: it re-derives every width's cap
+    #: it re-derives every cap
     cap_rule: dict = field(default_factory=dict)
     #: strip estimates before a point may stop (0 in stores made before the rule)
     min_strip_estimates: int = MIN_STRIP_ESTIMATES
 
     def warmup_for(self, width: int) -> int:
-        from sweepctl.kernel import default_warmup
+        from sweepctl.kernel.network import default_warmup
 
         return self.warmup if self.warmup is not None else default_warmup(width)
 
-    def max_replicas(self, width: int) -> int:
-        return max(1, self.max_layers[width] // self.replica_layers[width])
+    @staticmethod
+    def _lookup(table: dict, point: Point) -> int | None:
+        k = slice_key(point)
+        return table[k] if k in table else table.get(point.width)
+
+    def layers_for(self, point: Point) -> int:
+        """Measured layers per replica at ``point``."""
+        return int(self._lookup(self.replica_layers, point))
+
+    def cap_for(self, point: Point) -> int:
+        """Per-point cap on measured layers."""
+        return int(self._lookup(self.max_layers, point))
+
+    def max_replicas(self, point: Point) -> int:
+        return max(1, self.cap_for(point) // self.layers_for(point))
 
     def min_replicas(self) -> int:
         """Replicas needed for :attr:`min_strip_estimates` strip values."""
@@ -104,12 +126,15 @@ class Frozen:
 
     @classmethod
     def from_json(cls, d: dict) -> Frozen:
+        def keyed(t: dict) -> dict:
+            return {(int(k) if k.isdigit() else k): int(v) for k, v in t.items()}
+
         return cls(
             entropy=int(d["entropy"], 16),
             strips=int(d["strips"]),
             warmup=d["warmup"],
-            replica_layers={int(k): int(v) for k, v in d["replica_layers"].items()},
-            max_layers={int(k): int(v) for k, v in d["max_layers"].items()},
+            replica_layers=keyed(d["replica_layers"]),
+            max_layers=keyed(d["max_layers"]),
             replica_rule=d.get("replica_rule", {}),
             cap_rule=d.get("cap_rule", {}),
             # stores made before the rule keep the decisions they were made with
@@ -130,40 +155,6 @@ def _rule(recipe: Recipe) -> dict:
     }
 
 
-class CostModel:
-    """Seconds per strip-layer as a function of width, from a kernel calibration.
-
-    Log-log interpolation between calibrated widths; beyond them the nearest
-    segment's power law (at least N² growth) is extended.
-    """
-
-    def __init__(self, rows: list[dict]) -> None:
-        pts = sorted(
-            {int(r["width"]): 1.0 / float(r["strip_layers_per_second"]) for r in rows}.items()
-        )
-        if not pts:
-            raise ValueError("empty calibration")
-        self.widths = np.array([p[0] for p in pts], dtype=float)
-        self.secs = np.array([p[1] for p in pts], dtype=float)
-
-    def seconds_per_strip_layer(self, width: int) -> float:
-        w, s = self.widths, self.secs
-        if w.size == 1:
-            return float(s[0] * (width / w[0]) ** 2)
-        lw, ls = np.log(w), np.log(s)
-        x = math.log(width)
-        if x <= lw[0]:
-            slope = max((ls[1] - ls[0]) / (lw[1] - lw[0]), 0.0)
-            return float(math.exp(ls[0] + slope * (x - lw[0])))
-        if x >= lw[-1]:
-            slope = max((ls[-1] - ls[-2]) / (lw[-1] - lw[-2]), 2.0)
-            return float(math.exp(ls[-1] + slope * (x - lw[-1])))
-        return float(math.exp(np.interp(x, lw, ls)))
-
-    def replica_seconds(self, width: int, layers: int, warmup: int, strips: int) -> float:
-        return self.seconds_per_strip_layer(width) * strips * (layers + warmup)
-
-
 #: Replica duration when the recipe gives neither layers nor a duration.
 DEFAULT_REPLICA_SECONDS = 300.0
 
@@ -175,13 +166,13 @@ def freeze(
     default_seconds: float = DEFAULT_REPLICA_SECONDS,
     source: str = "recipe",
 ) -> Frozen:
-    """Frozen settings for ``recipe``: new widths are added, existing ones kept.
+    """Frozen settings for ``recipe``: new slices are added, existing ones kept.
 
     Replica lengths never change once frozen. Caps follow the recipe: when its
-    ``max_layers`` / ``max_cpu_hours`` differ from what the store recorded, every
-    width's cap is derived again (so a raised cap reopens capped points), otherwise
-    the recorded conversion is kept. ``default_seconds`` is the replica duration used
-    when the recipe names none (a batch profile passes a fraction of its walltime).
+    ``max_layers`` / ``max_cpu_hours`` differ from what the store recorded, every cap
+    is derived again (so a raised cap reopens capped points), otherwise the recorded
+    conversion is kept. ``default_seconds`` is the replica duration used when the
+    recipe names none (a batch profile passes a fraction of its walltime).
     """
     if previous is None:
         entropy = recipe.entropy if recipe.entropy is not None else secrets.randbits(128)
@@ -197,23 +188,32 @@ def freeze(
         if fz.cap_rule != _cap_rule(recipe):
             fz.max_layers = {}
             fz.cap_rule = _cap_rule(recipe)
-    for n in recipe.widths:
-        if n not in fz.replica_layers:
-            fz.replica_layers[n] = _replica_layers(recipe, cost, n, fz, default_seconds)
-        if n not in fz.max_layers:
-            fz.max_layers[n] = _cap_layers(recipe, cost, n, fz.replica_layers[n])
-    for n in fz.max_layers:
-        if n in recipe.widths and fz.max_replicas(n) < fz.min_replicas():
+    by_slice: dict[str, list[Point]] = {}
+    for p in recipe.points():
+        by_slice.setdefault(slice_key(p), []).append(p)
+    for sk, pts in by_slice.items():
+        n = pts[0].width
+        if fz._lookup(fz.replica_layers, pts[0]) is None:
+            if recipe.replica_layers is not None:
+                fz.replica_layers[n] = int(recipe.replica_layers)
+            else:
+                fz.replica_layers[sk] = _replica_layers(recipe, cost, pts, fz, default_seconds)
+        if fz._lookup(fz.max_layers, pts[0]) is None:
+            if recipe.max_layers is not None:
+                fz.max_layers[n] = max(int(recipe.max_layers), fz.layers_for(pts[0]))
+            else:
+                fz.max_layers[sk] = _cap_layers(recipe, cost, pts, fz.layers_for(pts[0]))
+        if fz.max_replicas(pts[0]) < fz.min_replicas():
             field_name = (
                 "precision.max_cpu_hours"
                 if recipe.max_cpu_hours is not None
                 else "precision.max_layers"
             )
-            need = fz.min_replicas() * fz.replica_layers[n]
+            need = fz.min_replicas() * fz.layers_for(pts[0])
             raise RecipeError(
                 field_name,
-                recipe.max_cpu_hours if recipe.max_cpu_hours is not None else fz.max_layers[n],
-                f"at N = {n} the cap allows {fz.max_replicas(n)} replicas of {fz.strips} "
+                recipe.max_cpu_hours if recipe.max_cpu_hours is not None else fz.cap_for(pts[0]),
+                f"at N = {n} the cap allows {fz.max_replicas(pts[0])} replicas of {fz.strips} "
                 f"strips, fewer than the {fz.min_strip_estimates} strip estimates an error "
                 f"bar needs; allow at least {need:,} layers per point",
                 source,
@@ -221,25 +221,27 @@ def freeze(
     return fz
 
 
+def _slice_seconds(cost: CostModel, pts: list[Point], strips: int) -> float:
+    """Seconds per strip-layer of the slice's dearest point (its replicas stay within
+    the duration asked for)."""
+    return max(cost.point_seconds(p, strips) for p in pts)
+
+
 def _replica_layers(
-    recipe: Recipe, cost: CostModel | None, n: int, fz: Frozen, default_seconds: float
+    recipe: Recipe, cost: CostModel | None, pts: list[Point], fz: Frozen, default_seconds: float
 ) -> int:
-    if recipe.replica_layers is not None:
-        return int(recipe.replica_layers)
     if cost is None:
         raise ValueError("a replica duration needs a kernel calibration")
     secs = recipe.replica_seconds or default_seconds
-    per_layer = cost.seconds_per_strip_layer(n) * recipe.strips
-    return int(max(64, round(secs / per_layer) - fz.warmup_for(n)))
+    per_layer = _slice_seconds(cost, pts, recipe.strips) * recipe.strips
+    return int(max(64, round(secs / per_layer) - fz.warmup_for(pts[0].width)))
 
 
-def _cap_layers(recipe: Recipe, cost: CostModel | None, n: int, layers: int) -> int:
-    if recipe.max_layers is not None:
-        cap = recipe.max_layers
-    elif recipe.max_cpu_hours is not None:
+def _cap_layers(recipe: Recipe, cost: CostModel | None, pts: list[Point], layers: int) -> int:
+    if recipe.max_cpu_hours is not None:
         if cost is None:
             raise ValueError("a CPU-hour cap needs a kernel calibration")
-        per_layer = cost.seconds_per_strip_layer(n) * recipe.strips
+        per_layer = _slice_seconds(cost, pts, recipe.strips) * recipe.strips
         cap = round(recipe.max_cpu_hours * 3600.0 / per_layer)
     else:
         cap = DEFAULT_CAP_REPLICAS * layers
@@ -362,59 +364,66 @@ def make_plan(
     """The plan of a recipe as plain data (what ``sweepctl plan`` shows).
 
     ``frozen``: the settings of an existing store (``plan --store``); by default those
-    a new store would get.
+    a new store would get. CPU is priced per point (:class:`CostModel`: disorder, ε and
+    coupling set the QR schedule); replica counts are the error model's a-priori guess.
     """
     fz = frozen if frozen is not None else freeze(recipe, cost, None)
     points = recipe.points()
-    by_width: dict[int, int] = {}
-    for p in points:
-        by_width[p.width] = by_width.get(p.width, 0) + 1
-    groups = []
+    groups: dict[str, dict] = {}
+    per_point = []
     total_reps = 0
     total_hours = 0.0
-    per_point = []
-    for n in sorted(by_width):
-        layers, warm, cap = fz.replica_layers[n], fz.warmup_for(n), fz.max_replicas(n)
+    for p in points:
+        n = p.width
+        layers, warm, cap = fz.layers_for(p), fz.warmup_for(n), fz.max_replicas(p)
         reps = max(
-            min(recipe.initial, cap),
+            min(max(recipe.initial, fz.min_replicas()), cap),
             expected_replicas(n, recipe.target, layers, recipe.strips, cap),
         )
-        hours = cost.replica_seconds(n, layers, warm, recipe.strips) / 3600.0
-        groups.append(
+        hours = cost.replica_seconds(p, layers, warm, recipe.strips) / 3600.0
+        per_point.append(
+            {
+                "point": p.key,
+                "N": n,
+                "x": p.x,
+                "p_block": p.p_block,
+                "p_open": p.p_open,
+                "epsilon": p.epsilon,
+                "replica_layers": layers,
+                "expected_replicas": reps,
+                "qr_per_layer": cost.qr_per_layer(p, recipe.strips),
+                "cpu_hours_per_replica": hours,
+                "cpu_hours": hours * reps,
+            }
+        )
+        g = groups.setdefault(
+            slice_key(p),
             {
                 "N": n,
-                "points": by_width[n],
+                "p_block": p.p_block,
+                "p_open": p.p_open,
+                "epsilon": p.epsilon,
+                "points": 0,
                 "replica_layers": layers,
                 "warmup": warm,
                 "strips": recipe.strips,
                 "expected_replicas_per_point": reps,
                 "max_replicas": cap,
-                "cpu_hours_per_replica": hours,
-                "cpu_hours": hours * reps * by_width[n],
-                "expected_layers_per_point": reps * layers,
-            }
+                "cpu_hours_per_replica": 0.0,
+                "cpu_hours": 0.0,
+            },
         )
-        total_reps += reps * by_width[n]
-        total_hours += hours * reps * by_width[n]
-    for p in points:
-        g = next(g for g in groups if g["N"] == p.width)
-        per_point.append(
-            {
-                "point": p.key,
-                "N": p.width,
-                "x": p.x,
-                "p_block": p.p_block,
-                "p_open": p.p_open,
-                "epsilon": p.epsilon,
-                "expected_replicas": g["expected_replicas_per_point"],
-                "cpu_hours": g["cpu_hours_per_replica"] * g["expected_replicas_per_point"],
-            }
-        )
-    n_max = max(by_width)
-    spl = cost.seconds_per_strip_layer(n_max) * recipe.strips
+        g["points"] += 1
+        g["cpu_hours_per_replica"] = max(g["cpu_hours_per_replica"], hours)
+        g["cpu_hours"] += hours * reps
+        total_reps += reps
+        total_hours += hours * reps
+    n_max = max(p.width for p in points)
+    dearest = max((p for p in points if p.width == n_max), key=lambda q: cost.point_seconds(q, 8))
+    spl = cost.point_seconds(dearest, recipe.strips) * recipe.strips
     ten_min = max(64, int(600.0 / spl) - fz.warmup_for(n_max))
     rep_secs = cost.replica_seconds(
-        n_max, fz.replica_layers[n_max], fz.warmup_for(n_max), recipe.strips
+        dearest, fz.layers_for(dearest), fz.warmup_for(n_max), recipe.strips
     )
     wall_min = math.ceil((6 * rep_secs + 600) / 900.0) * 15
     return {
@@ -424,6 +433,7 @@ def make_plan(
         "cpu_hours": total_hours,
         "cost_source": cost_source,
         "target": recipe.target,
+        "min_strip_estimates": fz.min_strip_estimates,
         "seed_scheme": (
             "replica r of point P uses SeedSequence(entropy, spawn_key=(*key_ints(P), r)), "
             "key_ints = four 32-bit words of SHA-256(P's canonical key); entropy "
@@ -434,10 +444,13 @@ def make_plan(
             )
         ),
         "suggestion": (
-            f"replica.layers ≈ {ten_min:,} for ~10-minute replicas at N = {n_max}; "
-            f"batch walltime ≥ {wall_min // 60}:{wall_min % 60:02d} (6 replicas of the largest "
-            f"width per job, plus start-up); replica.checkpoint_seconds = 180"
+            f"replica.layers ≈ {ten_min:,} for ~10-minute replicas at N = {n_max} "
+            f"(p_block = {dearest.p_block:g}, p_open = {dearest.p_open:g}); batch walltime "
+            f"≥ {wall_min // 60}:{wall_min % 60:02d} (6 replicas of the dearest slice per job, "
+            "plus start-up); replica.checkpoint_seconds = 180"
         ),
-        "widths": groups,
+        "widths": sorted(
+            groups.values(), key=lambda g: (g["N"], g["p_block"], g["p_open"], g["epsilon"])
+        ),
         "per_point": per_point,
     }

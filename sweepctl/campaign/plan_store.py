@@ -4,8 +4,9 @@ from __future__ import annotations
 
 from pathlib import Path
 
+from sweepctl.campaign.cost import CostModel
 from sweepctl.campaign.driver import prepare_campaign
-from sweepctl.campaign.plan import CostModel, Frozen
+from sweepctl.campaign.plan import Frozen
 from sweepctl.campaign.progress import RunPreview, preview_run
 from sweepctl.campaign.recipe import Recipe
 from sweepctl.campaign.store import Store

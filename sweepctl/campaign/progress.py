@@ -84,10 +84,10 @@ def build_progress(
     by_key: dict[str, PointProgress] = {}
     min_reps = frozen.min_replicas()
     for p in recipe.points():
-        cap = frozen.max_replicas(p.width)
+        cap = frozen.max_replicas(p)
         by_key[p.key] = PointProgress(
             point=p,
-            layers=frozen.replica_layers[p.width],
+            layers=frozen.layers_for(p),
             warmup=frozen.warmup_for(p.width),
             max_replicas=cap,
             target=recipe.target,

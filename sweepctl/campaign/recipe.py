@@ -10,7 +10,7 @@ A recipe is a TOML file::
     widths = [4, 8, 16]
     couplings = { start = -0.3, stop = 0.3, num = 7 }     # or a list of numbers
     disorder = [ { p = 0.0 }, { p_block = 0.1, p_open = 0.1 } ]
-    epsilon = [1e-6]
+    epsilon = [1e-6]                # at least 9.42e-7 (see smallest_safe_epsilon)
 
     [precision]
     target = 0.01              # relative standard error of Γ per point
@@ -39,7 +39,15 @@ from typing import Any
 
 from sweepctl.errors import SweepctlError
 
-__all__ = ["Point", "Recipe", "RecipeError", "canonical_float", "load_recipe", "parse_recipe"]
+__all__ = [
+    "Point",
+    "Recipe",
+    "RecipeError",
+    "canonical_float",
+    "load_recipe",
+    "parse_recipe",
+    "smallest_safe_epsilon",
+]
 
 _SECTIONS = {
     "campaign": {"name", "entropy", "description"},
@@ -70,6 +78,20 @@ class RecipeError(SweepctlError, ValueError):
 def _show(value: Any, limit: int = 60) -> str:
     text = repr(value)
     return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
+def smallest_safe_epsilon() -> float:
+    """The smallest ε whose blocking column the kernel's QR schedule covers.
+
+    A blocking node's block has ``cosh θ = 1/ε``, so one column of them grows the
+    frame's condition number by ``e^{2θ}`` (≈ 4/ε²). The engine re-orthogonalises
+    before the bound exceeds ``e^B`` with ``B = ln(1e-3/eps)`` (tests/REFERENCES.md
+    [M2]); a single column above it would be applied alone, uncovered. Covered iff
+    ``2 arccosh(1/ε) ≤ B`` ⇔ ``ε ≥ 1/cosh(B/2)`` ≈ 9.42e-7.
+    """
+    from sweepctl.kernel.schedule import LOG_COND_BUDGET
+
+    return 1.0 / math.cosh(LOG_COND_BUDGET / 2.0)
 
 
 def canonical_float(v: float) -> float:
@@ -150,7 +172,7 @@ class Recipe:
 
     def warmup_for(self, width: int) -> int:
         """Warm-up layers at ``width``."""
-        from sweepctl.kernel import default_warmup
+        from sweepctl.kernel.network import default_warmup
 
         return self.warmup if self.warmup is not None else default_warmup(width)
 
@@ -414,13 +436,23 @@ def parse_recipe(data: dict, source: str = "recipe") -> Recipe:
     disorder = _disorder(src, a.get("disorder", [{"p": 0.0}]))
     el = _nonempty_list(src, "axes.epsilon", a.get("epsilon", [1e-6]), "epsilon = [1e-6]")
     eps = []
+    eps_min = smallest_safe_epsilon()
     for i, e in enumerate(el):
-        v = _num(src, f"axes.epsilon[{i}]", e, "epsilon must be a number in (0, 0.1]")
-        if not (1e-12 <= v <= 0.1):
+        v = _num(src, f"axes.epsilon[{i}]", e, f"epsilon must be a number in [{eps_min:.3g}, 0.1]")
+        if v < eps_min:
             raise RecipeError(
                 f"axes.epsilon[{i}]",
                 e,
-                "epsilon must lie in [1e-12, 0.1] (a blocking node's transmission)",
+                f"the kernel's accuracy is proven only for epsilon >= {eps_min:.3g} (one "
+                "blocking column has condition number 4/epsilon^2, which must stay below "
+                "1e-3/eps of double precision between two QRs); use epsilon >= 1e-6",
+                src,
+            )
+        if v > 0.1:
+            raise RecipeError(
+                f"axes.epsilon[{i}]",
+                e,
+                f"epsilon must lie in [{eps_min:.3g}, 0.1] (a blocking node's transmission)",
                 src,
             )
         eps.append(canonical_float(v))

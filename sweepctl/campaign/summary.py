@@ -7,7 +7,8 @@ import math
 import numpy as np
 import pandas as pd
 
-from sweepctl.campaign.plan import CostModel, Frozen
+from sweepctl.campaign.cost import CostModel
+from sweepctl.campaign.plan import Frozen
 from sweepctl.campaign.progress import build_progress
 from sweepctl.campaign.recipe import Recipe
 from sweepctl.campaign.store import Store
@@ -103,7 +104,7 @@ def status_rows(store: Store, cost: CostModel | None) -> tuple[list[dict], dict]
         rel = pp.rel_err()
         missing = max(0, pp.wanted - len(pp.done))
         secs = (
-            missing * cost.replica_seconds(pp.point.width, pp.layers, pp.warmup, frozen.strips)
+            missing * cost.replica_seconds(pp.point, pp.layers, pp.warmup, frozen.strips)
             if cost is not None
             else math.nan
         )

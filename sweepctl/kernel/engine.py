@@ -37,7 +37,8 @@ import numpy as np
 from sweepctl import __version__
 from sweepctl.kernel._loops import apply_columns, column_bounds, unit_phases
 from sweepctl.kernel._qr import reorthogonalise
-from sweepctl.kernel.network import NetworkModel, draw_layers
+from sweepctl.kernel.network import NetworkModel, default_warmup, draw_layers
+from sweepctl.kernel.schedule import GROWTH_SCALE, LOG_COND_BUDGET, growth_units
 
 __all__ = [
     "LOG_COND_BUDGET",
@@ -50,20 +51,13 @@ __all__ = [
     "product_spectrum",
 ]
 
-#: Log of the largest condition-number bound allowed between two QRs.
-LOG_COND_BUDGET = math.log(1e-3 / np.finfo(np.float64).eps)
 #: Growth bounds are summed as integers in units of 2**-24 (exact, associative).
-_GROWTH_SCALE = 2.0**24
+_GROWTH_SCALE = GROWTH_SCALE
 _STATE_FORMAT = 1
 #: Target number of uniform variates drawn per chunk (a few MB of memory).
 _CHUNK_VARIATES = 400_000
 
 SeedLike = int | np.random.SeedSequence
-
-
-def default_warmup(width: int) -> int:
-    """Layers discarded before accumulating: ``max(5N, 32)``, a few localisation lengths."""
-    return max(5 * width, 32)
 
 
 def _generator(seed: SeedLike) -> np.random.Generator:
@@ -224,7 +218,7 @@ class StripState:
             raise ValueError(f"layers must be a non-negative integer, got {layers!r}")
         model = self.model
         table = model.node_table()
-        growth_int = np.ceil(model.growth_table() * _GROWTH_SCALE).astype(np.int64)
+        growth_int = growth_units(model)
         view = self.frame.view(np.float64)
         bufs = self._buffers()
         remaining = int(layers)

@@ -34,10 +34,17 @@ __all__ = [
     "OPEN",
     "LayerDraws",
     "NetworkModel",
+    "default_warmup",
     "dense_column",
     "dense_layer",
     "draw_layers",
 ]
+
+
+def default_warmup(width: int) -> int:
+    """Layers discarded before accumulating: ``max(5N, 32)``, a few localisation lengths."""
+    return max(5 * width, 32)
+
 
 #: Node kinds as stored in ``LayerDraws.kinds``.
 NORMAL, BLOCKING, OPEN = 0, 1, 2

@@ -96,31 +96,70 @@ def test_existing_cluster_through_a_scheduler_file(reference_store, tmp_path):
     )
 
 
+def _calibration(rows):
+    return CostModel(
+        [
+            {"width": n, "column_seconds": c, "column_seconds_disorder": cd, "qr_seconds": q}
+            for n, c, cd, q in rows
+        ]
+    )
+
+
 def test_duration_is_frozen_into_layers_once():
     data = {
         "campaign": {"name": "d"},
-        "axes": {"widths": [4, 8], "couplings": [0.0]},
+        "axes": {"widths": [4, 8], "couplings": [0.0], "disorder": [{"p": 0.0}, {"p": 0.1}]},
         "precision": {"target": 0.01, "max_cpu_hours": 0.5},
         "replica": {"duration_seconds": 10.0, "warmup": 40, "strips": 8},
     }
     rec = parse_recipe(data)
-    fast = CostModel(
-        [{"width": 4, "strip_layers_per_second": 8e5}, {"width": 8, "strip_layers_per_second": 4e5}]
-    )
+    fast = _calibration([(4, 1e-6, 1.5e-6, 8e-6), (8, 2e-6, 3e-6, 16e-6)])
     fz = freeze(rec, fast)
-    # derived: layers = duration / (seconds per strip-layer × strips) − warm-up
-    assert fz.replica_layers == {4: round(10.0 / (8 / 8e5)) - 40, 8: round(10.0 / (8 / 4e5)) - 40}
-    assert fz.max_layers[4] == round(0.5 * 3600 * 8e5 / 8)
-    # a slower machine later, and a new width: existing widths keep their frozen layers
-    slow = CostModel(
-        [
-            {"width": 4, "strip_layers_per_second": 1e5},
-            {"width": 16, "strip_layers_per_second": 1e4},
-        ]
+    clean4, clean8, dis4 = (
+        "N=4|pb=0.0|po=0.0|eps=1e-06",
+        "N=8|pb=0.0|po=0.0|eps=1e-06",
+        "N=4|pb=0.1|po=0.1|eps=1e-06",
     )
-    rec2 = parse_recipe({**data, "axes": {"widths": [4, 8, 16], "couplings": [0.0]}})
+    # derived: clean, x = 0: a column grows the bound by 2·asinh(1) = 1.763 and the budget
+    # ln(1e-3/eps) = 29.1 takes 16 columns, so 1/8 QR per layer; seconds per strip-layer
+    # = column + QR/8; layers = duration / (that × strips) − warm-up
+    assert fz.replica_layers[clean4] == round(10.0 / ((1e-6 + 8e-6 / 8) * 8)) - 40
+    assert fz.replica_layers[clean8] == round(10.0 / ((2e-6 + 16e-6 / 8) * 8)) - 40
+    assert fz.max_layers[clean4] == round(0.5 * 3600 / ((1e-6 + 8e-6 / 8) * 8))
+    # derived: with p_block = 0.1 on 4 × 8 nodes a column holds a blocking node (2θ ≈ 29.0,
+    # one column per QR) with probability 1 − 0.9³², so QRs per layer lie in
+    # [2·(1 − 0.9³²), 2]
+    lo, hi = (round(10.0 / ((1.5e-6 + q * 8e-6) * 8)) - 40 for q in (2.0, 2 * (1 - 0.9**32)))
+    assert lo <= fz.replica_layers[dis4] <= hi
+    # a slower machine later, and a new width: existing slices keep their frozen layers
+    slow = _calibration([(4, 1e-5, 1.5e-5, 8e-5), (16, 1e-4, 1.5e-4, 8e-4)])
+    rec2 = parse_recipe({**data, "axes": {**data["axes"], "widths": [4, 8, 16]}})
     fz2 = freeze(rec2, slow, fz)
-    assert fz2.replica_layers[4] == fz.replica_layers[4]
-    assert fz2.replica_layers[8] == fz.replica_layers[8]
-    assert fz2.replica_layers[16] == round(10.0 / (8 / 1e4)) - 40
+    for k in (clean4, clean8, dis4):
+        assert fz2.replica_layers[k] == fz.replica_layers[k]
+    assert fz2.replica_layers["N=16|pb=0.0|po=0.0|eps=1e-06"] == (
+        round(10.0 / ((1e-4 + 8e-4 / 8) * 8)) - 40
+    )
     assert fz2.entropy == fz.entropy
+
+
+def test_a_store_frozen_by_width_keeps_its_layers_for_every_slice():
+    # stores made before per-slice keys hold one replica length per width
+    data = {
+        "campaign": {"name": "d"},
+        "axes": {"widths": [4], "couplings": [0.0], "disorder": [{"p": 0.0}, {"p": 0.1}]},
+        "precision": {"target": 0.01},
+        "replica": {"duration_seconds": 10.0, "warmup": 40, "strips": 8},
+    }
+    old = freeze(parse_recipe(data), _calibration([(4, 1e-6, 1.5e-6, 8e-6)]))
+    legacy = old.to_json()
+    legacy["replica_layers"] = {"4": 12345}
+    legacy["max_layers"] = {"4": 12345 * 256}
+    from sweepctl.campaign.plan import Frozen
+    from sweepctl.campaign.recipe import Point
+
+    fz = freeze(
+        parse_recipe(data), _calibration([(4, 1e-6, 1.5e-6, 8e-6)]), Frozen.from_json(legacy)
+    )
+    for p in (Point(0.0, 0.0, 1e-6, 4, 0.0), Point(0.1, 0.1, 1e-6, 4, 0.0)):
+        assert fz.layers_for(p) == 12345 and fz.cap_for(p) == 12345 * 256
