@@ -397,7 +397,7 @@ class Driver:
                     self._rows = rows + self._rows
                     self._checkpoints = cks + self._checkpoints
                     raise
-                if os.environ.get("SWEEPCTL_FAULT") == "signal-in-flush":
+                if os.environ.get("SWEEPCTL_FAULT") == "signal-in-flush" and not final:
                     os.kill(os.getpid(), signal.SIGTERM)  # fault-injection hook for tests
                 for p in cks:
                     with contextlib.suppress(OSError):

@@ -150,8 +150,8 @@ class NetworkModel:
         """Expected sum of the ``N`` positive exponents per layer.
 
         Jensen's formula applied to ``<ln|det t|>`` with uniform phases gives
-        ``Σ_i γ_i = Σ_nodes -ln t`` averaged over node kinds (derived; see the
-        sum-rule row of the project's check values).
+        ``Σ_i γ_i = Σ_nodes -ln t`` averaged over node kinds (derived: [K3] in
+        tests/REFERENCES.md).
         """
         w = self.neg_log_t_table()
         pa = (1.0 - self.p_block - self.p_open, self.p_block, self.p_open)

@@ -22,8 +22,9 @@ BASE = {
         "disorder": [{"p": 0.0}],
         "epsilon": [1e-6],
     },
-    "precision": {"target": 0.03, "max_layers": 60_000},
-    "replica": {"layers": 4000, "warmup": 32, "strips": 4, "initial": 2, "checkpoint_seconds": 60},
+    # 2 replicas of 26 strips: the 51 strip values a point needs before it may stop
+    "precision": {"target": 0.03, "max_layers": 6_000},
+    "replica": {"layers": 600, "warmup": 32, "strips": 26, "initial": 2, "checkpoint_seconds": 60},
 }
 
 

@@ -20,6 +20,7 @@ MERGED_COLUMNS = [
     "x",
     "Gamma",
     "Gamma_err",
+    "n_strips",
     "replicas",
     "layers",
     "cpu_hours",
@@ -33,9 +34,11 @@ def test_run_merge_status_audit(reference_store):
     assert len(df) == 6 and set(df["N"]) == {2, 3}
     assert df["reached_target"].all()
     assert (df["Gamma_err"] / df["Gamma"] <= 0.03).all()
+    # every error bar rests on at least 51 strip values (2 replicas × 26 strips here)
+    assert (df["n_strips"] == 26 * df["replicas"]).all() and (df["n_strips"] >= 51).all()
     assert (df["replicas"] >= 2).all() and (df["cpu_hours"] > 0).all()
     # layers = measured layers per strip summed over replicas
-    assert (df["layers"] == df["replicas"] * 4000).all()
+    assert (df["layers"] == df["replicas"] * 600).all()
     csv = pd.read_csv(reference_store / "merged" / "points.csv")
     assert len(csv) == 6 and list(csv.columns) == MERGED_COLUMNS
 
@@ -74,7 +77,7 @@ def test_rows_carry_seeds_and_provenance(reference_store):
     for k in ("worker", "host", "sweepctl_version", "git_commit", "numpy_version"):
         assert row[k]
     assert row["finished"] >= row["started"]
-    assert len(row["gamma_strips"]) == 4 and len(row["exponents"]) == row["width"]
+    assert len(row["gamma_strips"]) == 26 and len(row["exponents"]) == row["width"]
 
 
 def test_one_worker_gives_the_same_table(reference_store, tmp_path):
@@ -128,8 +131,9 @@ def test_plan_json(tmp_path):
     assert {g["N"] for g in pl["widths"]} == {2, 3}
     for g in pl["widths"]:
         # derived from the error model: rel ≈ √(0.7 N / (0.85 L S R)); the first round is 2
+        # (2 × 26 strips ≥ the 51 strip values a point needs)
         assert g["expected_replicas_per_point"] == max(
-            2, math.ceil(0.7 * g["N"] / (0.85 * 0.03**2) / (4000 * 4))
+            2, math.ceil(0.7 * g["N"] / (0.85 * 0.03**2) / (600 * 26))
         )
         assert g["max_replicas"] == 10 and g["cpu_hours"] > 0
     assert "SeedSequence" in pl["seed_scheme"]

@@ -28,8 +28,8 @@ from tests.campaign.helpers import (
 
 FAULT = {  # ~20 s of work on 2 workers: kills land mid-campaign
     "axes": {"widths": [2, 3, 4]},
-    "precision": {"target": 0.001, "max_layers": 6_000_000},
-    "replica": {"layers": 300_000, "checkpoint_seconds": 0.3},
+    "precision": {"target": 0.001, "max_layers": 920_000},
+    "replica": {"layers": 46_000, "checkpoint_seconds": 0.3},
 }
 
 
@@ -132,8 +132,9 @@ def test_checkpointed_replica_resumes_bit_identically(tmp_path, launched):
     procs, stores = launched
     over = {
         "axes": {"widths": [8], "couplings": [0.1]},
-        "precision": {"target": 0.5, "max_layers": 400_000},
-        "replica": {"layers": 400_000, "initial": 1, "checkpoint_seconds": 0.5},
+        "precision": {"target": 0.5, "max_layers": 31_000},
+        # one replica of 52 strips (≥ 51 strip values): it alone finishes the point
+        "replica": {"layers": 31_000, "strips": 52, "initial": 1, "checkpoint_seconds": 0.5},
     }
     recipe = write_recipe(tmp_path / "recipe.toml", over)
     store = tmp_path / "store"

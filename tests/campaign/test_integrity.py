@@ -61,11 +61,15 @@ def test_the_same_replica_with_different_numbers_is_refused(reference_store, tmp
     assert snapshot(store) == snap  # nothing stored was touched
 
 
-def test_a_signal_inside_the_flush_writes_no_row_twice(reference_store, tmp_path):
+def test_a_signal_inside_the_flush_writes_no_row_twice(tmp_path):
     # Fault injection: the driver sends itself SIGTERM right after a part file is in place
-    # and before its checkpoints are removed and the buffer cleared.
-    recipe = write_recipe(tmp_path / "recipe.toml")
-    store = tmp_path / "store"
+    # and before its checkpoints are removed and the buffer cleared (a batch flush, not
+    # the final one: the campaign runs longer than one 5-second flush interval).
+    from tests.campaign.test_faults import FAULT
+
+    recipe = write_recipe(tmp_path / "recipe.toml", {**FAULT, "axes": {"widths": [2, 3]}})
+    ref, store = tmp_path / "ref", tmp_path / "store"
+    assert cli("run", recipe, "--store", ref, "--workers", "2").returncode == 0
     proc = cli(
         "run", recipe, "--store", store, "--workers", "2", env={"SWEEPCTL_FAULT": "signal-in-flush"}
     )
@@ -77,7 +81,7 @@ def test_a_signal_inside_the_flush_writes_no_row_twice(reference_store, tmp_path
     assert proc.returncode == 0, proc.stdout + proc.stderr
     keys = _raw_keys(store)
     assert len(keys) == len(set(keys))
-    assert merged(store).equals(merged(reference_store))
+    assert merged(store).equals(merged(ref))
 
 
 # ------------------------------------------------------------------------------ the lock
@@ -115,6 +119,7 @@ def test_lock_held_by_a_live_process_refuses_and_is_free_once_it_dies(reference_
     finally:
         holder.kill()
         holder.wait(timeout=30)
+        holder.stdout.close()
     # ... and once it is dead the lock is free without anyone removing a file
     proc = cli("run", recipe, "--store", store)
     assert proc.returncode == 0, proc.stdout + proc.stderr

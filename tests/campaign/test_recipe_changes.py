@@ -13,7 +13,7 @@ import pytest
 
 from tests.campaign.helpers import cli, events, write_recipe
 
-UNREACHABLE = {"precision": {"target": 1e-5, "max_layers": 60_000}}  # every point capped
+UNREACHABLE = {"precision": {"target": 1e-5, "max_layers": 9_000}}  # every point capped
 
 
 def _plan(recipe, store) -> dict:
@@ -55,10 +55,10 @@ def test_a_raised_cap_reopens_capped_points_and_plan_says_so(capped_store, tmp_p
     store = tmp_path / "store"
     shutil.copytree(capped_store, store)
     before = _replicas_per_point(store)
-    # derived: a cap of 60 000 layers with 4 000-layer replicas is 15 replicas per point
+    # derived: a cap of 9 000 layers with 600-layer replicas is 15 replicas per point
     assert set(before.values()) == {15}
     raised = write_recipe(
-        tmp_path / "raised.toml", {"precision": {"target": 1e-5, "max_layers": 120_000}}
+        tmp_path / "raised.toml", {"precision": {"target": 1e-5, "max_layers": 18_000}}
     )
     preview = _plan(raised, store)
     assert preview["reopened_points"] == 6 and preview["new_points"] == 0
@@ -69,7 +69,7 @@ def test_a_raised_cap_reopens_capped_points_and_plan_says_so(capped_store, tmp_p
     assert {k: v for k, v in logged.items() if k != "stored_rows"} == {
         k: v for k, v in preview.items() if k not in ("stored_rows", "path")
     }
-    # derived: the new cap is 120 000 / 4 000 = 30 replicas, and the target stays out of reach
+    # derived: the new cap is 18 000 / 600 = 30 replicas, and the target stays out of reach
     assert set(_replicas_per_point(store).values()) == {30}
 
 

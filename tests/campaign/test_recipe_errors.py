@@ -63,6 +63,8 @@ BAD = [
     ("target-negative", {"precision": {"target": -0.01}}, "precision.target"),
     ("target-missing", {"precision": {"target": None}}, "precision.target"),
     ("cap-below-replica", {"precision": {"max_layers": 100}}, "precision.max_layers"),
+    # one replica of 26 strips is fewer than the 51 strip values an error bar needs
+    ("cap-below-strip-minimum", {"precision": {"max_layers": 600}}, "precision.max_layers"),
     ("strips-one", {"replica": {"strips": 1}}, "replica.strips"),
     ("layers-zero", {"replica": {"layers": 0}}, "replica.layers"),
     ("layers-and-duration", {"replica": {"duration_seconds": 60}}, "replica.duration_seconds"),

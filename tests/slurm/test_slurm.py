@@ -27,23 +27,23 @@ PY_BIN = str(Path(sys.executable).parent)
 
 SLOW = {
     "axes": {"widths": [2, 3, 4]},
-    "precision": {"target": 0.002, "max_layers": 2_000_000},
-    "replica": {"layers": 100_000, "checkpoint_seconds": 0.3},
+    "precision": {"target": 0.002, "max_layers": 308_000},
+    "replica": {"layers": 15_400, "checkpoint_seconds": 0.3},
 }
 
 
 # about a minute of work on two workers: long enough to cancel a job in the middle
 MEDIUM = {
     "axes": {"widths": [2, 3, 4]},
-    "precision": {"target": 0.001, "max_layers": 20_000_000},
-    "replica": {"layers": 300_000, "checkpoint_seconds": 1},
+    "precision": {"target": 0.001, "max_layers": 3_080_000},
+    "replica": {"layers": 46_000, "checkpoint_seconds": 1},
 }
 
 # long enough that a one-minute allocation cannot finish it
 ALLOC = {
     "axes": {"widths": [2, 3, 4]},
-    "precision": {"target": 0.0004, "max_layers": 40_000_000},
-    "replica": {"layers": 600_000, "checkpoint_seconds": 2},
+    "precision": {"target": 0.0004, "max_layers": 6_160_000},
+    "replica": {"layers": 92_000, "checkpoint_seconds": 2},
 }
 
 
@@ -152,8 +152,8 @@ def test_worker_job_cancelled_mid_campaign(tmp_path):
 def test_worker_job_hits_walltime_mid_replica(tmp_path):
     over = {
         "axes": {"widths": [8], "couplings": [0.1]},
-        "precision": {"target": 0.5, "max_layers": 20_000_000},
-        "replica": {"layers": 20_000_000, "initial": 1, "checkpoint_seconds": 5},
+        "precision": {"target": 0.5, "max_layers": 1_540_000},
+        "replica": {"layers": 1_540_000, "strips": 52, "initial": 1, "checkpoint_seconds": 5},
     }
     recipe = write_recipe(tmp_path / "recipe.toml", over)
     store = tmp_path / "store"
