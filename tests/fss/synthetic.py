@@ -1,14 +1,14 @@
 """Invented data for synthetic-recovery tests: a known scaling form plus Gaussian noise.
 
-The "true" parameters below are chosen for the test (ν near the published band so the
-problem has realistic conditioning); they are not measurements.
+The "true" parameters below are chosen for the test (ν near [P1] tests/REFERENCES.md so
+the problem has realistic conditioning); they are not measurements.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-from sweepctl.fss import Orders, ScalingData, ScalingModel
+from sweepctl.fss import Orders, ScalingData, ScalingModel, fit, resampled_intervals
 
 WIDTHS = (4, 8, 16, 32, 64)
 COUPLINGS = np.linspace(-0.3, 0.3, 11)
@@ -39,3 +39,68 @@ def make(
     g = model.evaluate(theta, f, x, n)
     err = rel_err * g
     return ScalingData(n, x, g + err * rng.standard_normal(g.size), err)
+
+
+#: cheap general form for checks over hundreds of data sets, orders (2,0,1,0):
+#: θ = (ν, x_c); f = f0, f1, f2 (Γ > 0.39 on the grid below); invented values
+CHEAP = ScalingModel(Orders(2, 0, 1, 0))
+CHEAP_THETA = np.array([2.6, 0.03])
+CHEAP_F = np.array([0.8, -0.9, 0.5])
+#: its duality-symmetric counterpart ([K7] tests/REFERENCES.md): θ = (ν,); f = f0, f2
+SYMMETRIC_CHEAP = ScalingModel(Orders(2, 0, 1, 0), symmetric=True)
+
+
+def make_strips(
+    seed: int,
+    n_strips: int,
+    model: ScalingModel = CHEAP,
+    theta: np.ndarray = CHEAP_THETA,
+    f: np.ndarray = CHEAP_F,
+    rel_err: float = 0.003,
+    widths=WIDTHS,
+) -> ScalingData:
+    """Each point's Γ is the mean of ``n_strips`` Gaussian strip values; Gamma_err is their
+    sample standard error s/√n (so it is itself an estimate, as in a campaign).
+
+    The strips scatter by ``rel_err·Γ·√n``, so the true standard error is ``rel_err·Γ``.
+    """
+    rng = np.random.default_rng(seed)
+    n = np.repeat(np.asarray(widths, float), COUPLINGS.size)
+    x = np.tile(COUPLINGS, len(widths))
+    g = model.evaluate(theta, f, x, n)
+    spread = rel_err * g * np.sqrt(n_strips)
+    strips = g[:, None] + spread[:, None] * rng.standard_normal((g.size, n_strips))
+    err = strips.std(axis=1, ddof=1) / np.sqrt(n_strips)
+    return ScalingData(n, x, strips.mean(axis=1), err, np.full(g.size, n_strips))
+
+
+def errors_as_exact(data: ScalingData) -> ScalingData:
+    """The same points with ``n_strips`` dropped: Gamma_err taken as the true σ."""
+    return ScalingData(data.N, data.x, data.Gamma, data.Gamma_err)
+
+
+def strip_run(seed: int, n_strips: int, resamples: int, compare: bool = False) -> dict:
+    """One few-strip data set (:func:`make_strips`): its fit's goodness-of-fit probability
+    with the estimated-variance method and with σ̂ taken as exact, and (``resamples`` > 0)
+    95 % resampled intervals of ν and x_c; with ``compare`` also the ν interval of σ̂
+    taken as exact (Γ + σ̂z, fixed weights).  A top-level function, for process pools."""
+    data = make_strips(seed, n_strips)
+    best = fit(data, CHEAP)
+    exact = errors_as_exact(data)
+    best_exact = fit(exact, CHEAP)
+    out = {"p": best.p_value, "method": best.gof_method, "p_exact": best_exact.p_value}
+    if resamples:
+        cis = resampled_intervals(data, best, resamples=resamples, seed=seed)
+        out.update(nu_ci=cis.bounds["nu"], x_c_ci=cis.bounds["x_c"], failed=cis.failed)
+    if resamples and compare:
+        cis = resampled_intervals(exact, best_exact, resamples=resamples, seed=seed)
+        out.update(nu_ci_exact=cis.bounds["nu"])
+    return out
+
+
+def general_run(seed: int, resamples: int = 200) -> tuple:
+    """Fit of :data:`GENERAL` to ``make(1000 + seed)`` and its resampled intervals (for the
+    exact-σ coverage check; a top-level function, for process pools)."""
+    data = make(1000 + seed)
+    best = fit(data, GENERAL)
+    return best, resampled_intervals(data, best, resamples=resamples, seed=seed)

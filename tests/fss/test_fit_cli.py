@@ -7,9 +7,9 @@ import json
 import numpy as np
 import pandas as pd
 import pytest
-from scipy import stats
 
 from sweepctl.fss import fit, resampled_intervals
+from sweepctl.fss.fit import GOF_ESTIMATED, GOF_EXACT
 from tests.campaign.helpers import cli
 from tests.fss import synthetic as syn
 
@@ -56,16 +56,38 @@ def test_fit_json_on_dask_matches_in_process_resampling(points_csv, tmp_path):
         assert key in res, key
     assert res["points_used"] == 55 and res["dof"] == 55 - 9 and res["n_min"] == 4
     assert res["orders"] == {"n_R": 2, "n_I": 1, "m_R": 1, "m_I": 0}
-    # goodness of fit is scipy's χ² tail probability
-    assert res["p_value"] == stats.chi2.sf(res["chi2"], res["dof"])
-    # the same seeds give the same intervals in this process, without Dask
+    # the CLI reports the library's fit of the same table (no n_strips column: errors are
+    # taken as exact; the probability itself is checked in test_statistics.py)
     data = syn.make(5)
     best = fit(data, syn.GENERAL)
+    assert best.gof_method == GOF_EXACT
+    assert res["chi2"] == pytest.approx(best.chi2, rel=1e-9)
+    assert res["p_value"] == pytest.approx(best.p_value, rel=1e-9)
+    # the same seeds give the same intervals in this process, without Dask
     cis = resampled_intervals(data, best, resamples=100, seed=4)
     for q in ("nu", "y", "x_c", "Gamma_c"):
         assert res[f"{q}_ci"] == pytest.approx(list(cis.bounds[q]), rel=1e-9), q
         assert res[f"{q}_ci"][0] <= res[q] <= res[f"{q}_ci"][1]
     assert "resampling" in proc.stdout
+
+
+def test_fit_reads_the_strip_count_column(tmp_path):
+    # invented few-strip data (tests/fss/synthetic.py): with n_strips in the table the CLI
+    # uses the estimated-variance probability ([S2] tests/REFERENCES.md), not chi2.sf
+    data = syn.make_strips(8, 16)
+    path = tmp_path / "strips.csv"
+    _table(data, n_strips=16).to_csv(path, index=False)
+    out = tmp_path / "fit.json"
+    proc = cli(
+        "fit", path, "--orders", "2,0,1,0", "--workers", "1", "--resamples", "20", "--json", out
+    )
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    res = json.loads(out.read_text())
+    best = fit(data, syn.CHEAP)
+    exact = fit(syn.errors_as_exact(data), syn.CHEAP)
+    assert best.gof_method == GOF_ESTIMATED
+    assert res["p_value"] == pytest.approx(best.p_value, rel=1e-9)
+    assert abs(best.p_value - exact.p_value) > 0.01, (best.p_value, exact.p_value)
 
 
 def test_scan_marks_a_stable_choice(points_csv):

@@ -26,6 +26,9 @@ RECIPE = {
     },
 }
 
+#: [P1] tests/REFERENCES.md ν = 2.593 ± 0.3 for widths 4–32 (see the test)
+NU_BAND = (2.3, 2.9)
+
 
 @pytest.mark.slow
 def test_clean_network_nu_in_published_band(tmp_path):
@@ -38,11 +41,14 @@ def test_clean_network_nu_in_published_band(tmp_path):
     proc = cli("fit", store, "--scan", "--max-orders", "4,1,3,1", "--json", chosen)
     assert proc.returncode == 0, proc.stdout + proc.stderr
     res = json.loads(chosen.read_text())
-    # REFERENCES.md: ν = 2.593 [2.587, 2.598] (Slevin & Ohtsuki, PRB 80, 041304 (2009));
-    # on modest widths only the band [2.3, 2.9] is asked of the fit.
-    assert 2.3 <= res["nu"] <= 2.9, res
+    # [P1] tests/REFERENCES.md: ν = 2.593 [2.587, 2.598] (N → ∞). The band is fixed from
+    # that source, not from this campaign's output: widths 4–32 are modest, so [P1] ± 0.3,
+    # i.e. [2.3, 2.9], is asked of the fit. It was set before this campaign was first run
+    # and must not be widened to make a run pass; a failure means the fit or the kernel
+    # is wrong, or the widths are too small for the form chosen.
+    assert NU_BAND[0] <= res["nu"] <= NU_BAND[1], res
     assert res["nu_ci"][0] < res["nu"] < res["nu_ci"][1]
-    assert res["p_value"] >= 0.1, res  # the scan accepts only p ≥ 0.1
+    assert res["p_value"] >= 0.1, res  # [M5]: the scan accepts only p ≥ 0.1
     # The same form refitted without the symmetry: x_c is free and must come out at 0.
     o = res["orders"]
     general = tmp_path / "general.json"
@@ -59,6 +65,6 @@ def test_clean_network_nu_in_published_band(tmp_path):
     )
     assert proc.returncode == 0, proc.stdout + proc.stderr
     gen = json.loads(general.read_text())
-    # derived: self-duality at p_block = p_open puts the critical point at x_c = 0
+    # [K7] tests/REFERENCES.md: self-duality at p_block = p_open puts x_c at 0
     assert gen["x_c_ci"][0] <= 0.0 <= gen["x_c_ci"][1], gen
-    assert 2.3 <= gen["nu"] <= 2.9, gen
+    assert NU_BAND[0] <= gen["nu"] <= NU_BAND[1], gen  # [P1], the band above
