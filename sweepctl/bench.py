@@ -121,6 +121,11 @@ def bench_widths(
     the process's CPU time (see :func:`_clock`).
     """
     # Imported here: the driver needs only the stored calibration, not the compiled kernel.
+    # The engine must be imported before the thread limit is set: it loads SciPy's
+    # LAPACK/BLAS, and threadpoolctl limits only libraries already loaded (a library
+    # loaded inside the block keeps its default threads, which on busy cores made an
+    # N = 64 QR a thousand times slower).
+    import sweepctl.kernel.engine  # noqa: F401
     from sweepctl.kernel import NetworkModel
 
     rows = []
