@@ -64,6 +64,7 @@ class CostModel:
         self._column_disorder = _PowerLaw(w, col("column_seconds_disorder"), 2.0)
         self._qr = _PowerLaw(w, col("qr_seconds"), 3.0)
         self.widths = w
+        self._memo: dict[tuple[Point, int], float] = {}
 
     def qr_per_layer(self, point: Point, strips: int) -> float:
         """Mean QRs per layer of the engine's schedule at ``point``."""
@@ -74,7 +75,14 @@ class CostModel:
         return expected_qr_per_layer(model, strips)
 
     def point_seconds(self, point: Point, strips: int) -> float:
-        """Seconds per strip-layer at ``point`` (one BLAS thread)."""
+        """Seconds per strip-layer at ``point`` (one BLAS thread); memoised, since the
+        driver prices every open point on each progress update."""
+        key = (point, strips)
+        if key not in self._memo:
+            self._memo[key] = self._price(point, strips)
+        return self._memo[key]
+
+    def _price(self, point: Point, strips: int) -> float:
         n = point.width
         disordered = point.p_block > 0 or point.p_open > 0
         c = self._column_disorder(n) if disordered else self._column(n)

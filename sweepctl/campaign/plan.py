@@ -419,7 +419,9 @@ def make_plan(
         total_reps += reps
         total_hours += hours * reps
     n_max = max(p.width for p in points)
-    dearest = max((p for p in points if p.width == n_max), key=lambda q: cost.point_seconds(q, 8))
+    dearest = max(
+        (p for p in points if p.width == n_max), key=lambda q: cost.point_seconds(q, recipe.strips)
+    )
     spl = cost.point_seconds(dearest, recipe.strips) * recipe.strips
     ten_min = max(64, int(600.0 / spl) - fz.warmup_for(n_max))
     rep_secs = cost.replica_seconds(
