@@ -112,13 +112,16 @@ def _qr_seconds(width: int, strips: int, seconds: float) -> float:
 
 
 def bench_widths(
-    widths: list[int], strips: int = 8, seconds: float = 1.0, x: float = 0.0
+    widths: list[int], strips: int = 8, seconds: float = 1.0, x: float = 0.0, repeats: int = 3
 ) -> list[BenchRow]:
     """Measure throughput and the cost parts at each width for about ``seconds`` each.
 
     A short calibration run sizes each timed run; compilation and warm-up are
     excluded. The BLAS is limited to one thread for the measurement, and times are
-    the process's CPU time (see :func:`_clock`).
+    the process's CPU time (see :func:`_clock`). Each width is measured ``repeats``
+    times, interleaved with the other widths, and every part is the median of its
+    repeats: on a shared virtual machine single 1-s runs scattered by 40 % (measured),
+    most of it in whichever width ran first.
     """
     # Imported here: the driver needs only the stored calibration, not the compiled kernel.
     # The engine must be imported before the thread limit is set: it loads SciPy's
@@ -128,37 +131,51 @@ def bench_widths(
     import sweepctl.kernel.engine  # noqa: F401
     from sweepctl.kernel import NetworkModel
 
-    rows = []
+    repeats = max(1, int(repeats))
+    share = seconds / repeats
+    parts: dict[int, list[tuple]] = {int(n): [] for n in widths}
     with threadpool_limits(1):
-        for n in widths:
-            t_qr = _qr_seconds(int(n), strips, seconds)
-            layers, dt, n_qr = _timed_run(NetworkModel(int(n), x), strips, seconds)
-            dis = NetworkModel(int(n), x, 1.0 / 3.0, 1.0 / 3.0, 1e-6)
-            layers_d, dt_d, n_qr_d = _timed_run(dis, strips, 0.5 * seconds)
-            # what is not QR; never below a tenth of the whole (timer noise at tiny N)
-            col = max((dt - n_qr * strips * t_qr) / (strips * layers), 0.1 * dt / (strips * layers))
-            col_d = max(
-                (dt_d - n_qr_d * strips * t_qr) / (strips * layers_d),
-                0.1 * dt_d / (strips * layers_d),
+        # one throw-away pass warms every code path (loaded machine code, workspaces)
+        first = int(widths[0])
+        _timed_run(NetworkModel(first, x), strips, 0.05)
+        _timed_run(NetworkModel(first, x, 1.0 / 3.0, 1.0 / 3.0, 1e-6), strips, 0.05)
+        for _ in range(repeats):
+            for n in parts:
+                t_qr = _qr_seconds(n, strips, share)
+                layers, dt, n_qr = _timed_run(NetworkModel(n, x), strips, share)
+                dis = NetworkModel(n, x, 1.0 / 3.0, 1.0 / 3.0, 1e-6)
+                layers_d, dt_d, n_qr_d = _timed_run(dis, strips, 0.5 * share)
+                parts[n].append((t_qr, layers, dt, n_qr, layers_d, dt_d, n_qr_d))
+    rows = []
+    for n, runs in parts.items():
+        t_qr = float(np.median([r[0] for r in runs]))
+        per = float(np.median([r[2] / r[1] for r in runs]))  # seconds per layer, clean
+        per_d = float(np.median([r[5] / r[4] for r in runs]))
+        q = float(np.median([r[3] / r[1] for r in runs]))
+        q_d = float(np.median([r[6] / r[4] for r in runs]))
+        layers = int(sum(r[1] for r in runs))
+        dt = layers * per
+        # what is not QR; never below a tenth of the whole (timer noise at tiny N)
+        col = max(per / strips - q * t_qr, 0.1 * per / strips)
+        col_d = max(per_d / strips - q_d * t_qr, 0.1 * per_d / strips)
+        m = n
+        flops = strips * (48.0 * n * m + q * 8.0 * (4 * n * m * m - 2 * m**3 / 3)) / per
+        rows.append(
+            BenchRow(
+                width=n,
+                strips=strips,
+                layers=layers,
+                seconds=dt,
+                layers_per_second=1.0 / per,
+                strip_layers_per_second=strips / per,
+                qr_per_layer=q,
+                gflops=flops / 1e9,
+                column_seconds=col,
+                column_seconds_disorder=col_d,
+                qr_seconds=t_qr,
+                strip_layers_per_second_disorder=strips / per_d,
             )
-            m = n
-            flops = strips * (layers * 48.0 * n * m + n_qr * 8.0 * (4 * n * m * m - 2 * m**3 / 3))
-            rows.append(
-                BenchRow(
-                    width=int(n),
-                    strips=strips,
-                    layers=layers,
-                    seconds=dt,
-                    layers_per_second=layers / dt,
-                    strip_layers_per_second=strips * layers / dt,
-                    qr_per_layer=n_qr / layers,
-                    gflops=flops / dt / 1e9,
-                    column_seconds=col,
-                    column_seconds_disorder=col_d,
-                    qr_seconds=t_qr,
-                    strip_layers_per_second_disorder=strips * layers_d / dt_d,
-                )
-            )
+        )
     return rows
 
 
