@@ -10,6 +10,7 @@ from typing import Annotated
 
 import typer
 from rich.console import Console
+from rich.markup import escape
 from rich.table import Table
 
 from sweepctl import __version__
@@ -31,7 +32,8 @@ class UserError(SweepctlError):
 
 
 def _fail(message: str, code: int = 2) -> None:
-    err_console.print(f"[bold red]error:[/] {message}", highlight=False, soft_wrap=True)
+    # escaped: messages name TOML tables like [precision], which are markup to rich
+    err_console.print(f"[bold red]error:[/] {escape(message)}", highlight=False, soft_wrap=True)
     sys.exit(code)
 
 

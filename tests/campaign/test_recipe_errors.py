@@ -119,6 +119,13 @@ def test_malformed_recipe(name, bad, field, small_store, tmp_path):
     assert snapshot(store) == before  # nothing stored was touched
 
 
+def test_messages_keep_their_table_names(tmp_path):
+    # the console renders [name] as markup; a message naming a TOML table must keep it
+    path = write_recipe(tmp_path / "r.toml", {"precision": {"target": None}})
+    proc = cli("plan", path)
+    assert proc.returncode == 2 and "under [precision]" in proc.stderr, proc.stderr
+
+
 def test_missing_recipe_file(tmp_path):
     proc = cli("run", tmp_path / "nope.toml", "--store", tmp_path / "s")
     assert proc.returncode == 2 and "no such file" in proc.stderr
