@@ -31,6 +31,7 @@ from __future__ import annotations
 import hashlib
 import json
 import math
+import re
 import tomllib
 from dataclasses import dataclass
 from decimal import Decimal, localcontext
@@ -61,23 +62,88 @@ _REQUIRED = {
     "precision": {"target"},
     "replica": set(),
 }
+#: how the fix for a missing required key reads
+_EXAMPLES = {
+    "name": 'name = "my-crossing"',
+    "widths": "widths = [8, 16, 32]",
+    "couplings": "couplings = { start = -0.2, stop = 0.2, num = 9 }",
+    "target": "target = 0.01",
+}
 _MAX_WIDTH = 4096
+_MAX_STRIPS = 4096
 _MAX_COUPLING = 10.0
 _MAX_POINTS = 1_000_000
 
 
 class RecipeError(SweepctlError, ValueError):
-    """A recipe problem: ``field``, ``value`` and a one-line ``fix``."""
+    """A recipe problem: ``field``, ``value`` and a one-line ``fix``.
+
+    The line reads ``FILE: FIELD = VALUE: FIX`` with the field as written in TOML and the
+    value rendered as TOML; a missing key reads ``FILE: FIELD is missing: FIX``; problems
+    with the file itself (``field`` ``(file)``) name the file once, and TOML syntax
+    errors (``field`` ``(TOML)``, ``value`` the parser's message) lead with line and
+    column.
+    """
 
     def __init__(self, field: str, value: Any, fix: str, source: str = "recipe") -> None:
         self.field, self.value, self.fix, self.source = field, value, fix, source
-        shown = _show(value, 200) if field == "(TOML)" else _show(value)
-        super().__init__(f"{source}: {field} = {shown}: {fix}")
+        if field == "(file)":
+            text = f"{source}: {fix}"
+        elif field == "(TOML)":
+            text = _syntax_line(source, str(value), fix)
+        elif value is None:
+            text = f"{source}: {field} is missing: {fix}"
+        else:
+            text = f"{source}: {field} = {toml_value(value)}: {fix}"
+        super().__init__(text)
 
 
-def _show(value: Any, limit: int = 60) -> str:
-    text = repr(value)
+def _syntax_line(source: str, message: str, fix: str) -> str:
+    m = re.search(r"\s*\(at line (\d+), column (\d+)\)\s*$", message)
+    if m:
+        where = f"line {m.group(1)}, column {m.group(2)}"
+        return f"{source}: {where}: TOML syntax: {message[: m.start()]}; {fix}"
+    m = re.search(r"\s*\(at end of document\)\s*$", message)
+    if m:
+        return f"{source}: end of file: TOML syntax: {message[: m.start()]}; {fix}"
+    return f"{source}: TOML syntax: {message}; {fix}"
+
+
+def toml_value(value: Any, limit: int = 60) -> str:
+    """``value`` as it would be written in TOML (shortened to ``limit`` characters)."""
+    text = _toml(value)
     return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
+def _toml(v: Any) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, int):
+        return str(v)
+    if isinstance(v, float):
+        if math.isnan(v):
+            return "nan"
+        if math.isinf(v):
+            return "inf" if v > 0 else "-inf"
+        return format_float(v)
+    if isinstance(v, str):
+        return '"' + v.replace("\\", "\\\\").replace('"', '\\"') + '"'
+    if isinstance(v, dict):
+        if not v:
+            return "{}"
+        return "{ " + ", ".join(f"{k} = {_toml(x)}" for k, x in v.items()) + " }"
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(_toml(x) for x in v) + "]"
+    return str(v)
+
+
+def format_float(v: float) -> str:
+    """Shortest decimal of ``v``, exponent without padding (``9.42e-7``, not ``9.42e-07``)."""
+    text = repr(float(v))
+    if "e" in text:
+        mant, exp = text.split("e")
+        text = f"{mant}e{int(exp)}"
+    return text
 
 
 def smallest_safe_epsilon() -> float:
@@ -268,7 +334,7 @@ def _unique(src: str, field: str, values: list, show: list) -> None:
     for v, s in zip(values, show, strict=True):
         if v in seen:
             raise RecipeError(
-                field, s, f"duplicate value (same point as {_show(seen[v])}); remove one", src
+                field, s, f"duplicate value (same point as {toml_value(seen[v])}); remove one", src
             )
         seen[v] = s
 
@@ -350,7 +416,13 @@ def _disorder(src: str, v: Any) -> tuple[tuple[float, float], ...]:
             raise RecipeError(f"{f}.{k}", d[k], "unknown key; use p, or p_block and p_open", src)
         if "p" in d:
             if "p_block" in d or "p_open" in d:
-                raise RecipeError(f, d, "give either p or p_block and p_open, not both", src)
+                raise RecipeError(
+                    f,
+                    d,
+                    "give either p (both probabilities) or p_block and p_open, not both: "
+                    f"e.g. {{ p = {toml_value(d['p'])} }}",
+                    src,
+                )
             pb = po = _prob(src, f"{f}.p", d["p"])
         else:
             if "p_block" not in d or "p_open" not in d:
@@ -390,9 +462,7 @@ def parse_recipe(data: dict, source: str = "recipe") -> Recipe:
                 )
         for k in sorted(_REQUIRED[sec]):
             if k not in body:
-                raise RecipeError(
-                    f"{sec}.{k}", None, f"missing; add {k} = ... under [{sec}]", source
-                )
+                raise RecipeError(f"{sec}.{k}", None, f"add {_EXAMPLES[k]} under [{sec}]", source)
 
     c, a, p, r = (data.get(s, {}) for s in ("campaign", "axes", "precision", "replica"))
     src = source
@@ -437,22 +507,23 @@ def parse_recipe(data: dict, source: str = "recipe") -> Recipe:
     el = _nonempty_list(src, "axes.epsilon", a.get("epsilon", [1e-6]), "epsilon = [1e-6]")
     eps = []
     eps_min = smallest_safe_epsilon()
+    eps_range = f"{format_float(float(f'{eps_min:.3g}'))} <= epsilon <= 0.1"
     for i, e in enumerate(el):
-        v = _num(src, f"axes.epsilon[{i}]", e, f"epsilon must be a number in [{eps_min:.3g}, 0.1]")
+        v = _num(src, f"axes.epsilon[{i}]", e, f"epsilon must be a number, {eps_range}")
         if v < eps_min:
             raise RecipeError(
                 f"axes.epsilon[{i}]",
                 e,
-                f"the kernel's accuracy is proven only for epsilon >= {eps_min:.3g} (one "
-                "blocking column has condition number 4/epsilon^2, which must stay below "
-                "1e-3/eps of double precision between two QRs); use epsilon >= 1e-6",
+                f"the kernel's accuracy is proven only for {eps_range} (one blocking column "
+                "has condition number 4/epsilon^2, which must stay below 1e-3/eps of double "
+                "precision between two QRs); use epsilon = 1e-6",
                 src,
             )
         if v > 0.1:
             raise RecipeError(
                 f"axes.epsilon[{i}]",
                 e,
-                f"epsilon must lie in [{eps_min:.3g}, 0.1] (a blocking node's transmission)",
+                f"a blocking node's transmission must be small: {eps_range}; e.g. 1e-6",
                 src,
             )
         eps.append(canonical_float(v))
@@ -515,13 +586,18 @@ def parse_recipe(data: dict, source: str = "recipe") -> Recipe:
         warmup = _int(
             src, "replica.warmup", warm, 0, 'must be a whole number of layers >= 0 or "auto"'
         )
+    sv = r.get("strips", 8)
     strips = _int(
         src,
         "replica.strips",
-        r.get("strips", 8),
+        sv,
         2,
-        "at least 2 strips (the error bar is their spread)",
-        4096,
+        f"use at most {_MAX_STRIPS} strips per replica; more strip values come from more "
+        "replicas (replica.initial, or a tighter precision.target)"
+        if _is_num(sv) and sv > _MAX_STRIPS
+        else f"a whole number of strips from 2 to {_MAX_STRIPS} (the error bar is their "
+        "spread), e.g. strips = 8",
+        _MAX_STRIPS,
     )
     initial = _int(
         src,
@@ -592,7 +668,5 @@ def load_recipe(path: str | Path) -> Recipe:
             "(file)", src, "not UTF-8 text; save the recipe as UTF-8 TOML", src
         ) from None
     except tomllib.TOMLDecodeError as exc:
-        raise RecipeError(
-            "(TOML)", str(exc), "fix the TOML syntax at the position given", src
-        ) from None
+        raise RecipeError("(TOML)", str(exc), "fix the TOML there", src) from None
     return parse_recipe(data, src)

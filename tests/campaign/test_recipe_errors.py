@@ -71,8 +71,9 @@ BAD = [
     ("warmup-negative", {"replica": {"warmup": -5}}, "replica.warmup"),
     ("name-missing", {"campaign": {"name": None}}, "campaign.name"),
     ("entropy-not-integer", {"campaign": {"entropy": '"xyz"'}}, "campaign.entropy"),
-    ("unreadable-toml", "raw:[axes\nwidths = [4", "(TOML)"),
-    ("not-utf8", "bytes", "(file)"),
+    # syntax errors lead with line and column; a file problem names the file once
+    ("unreadable-toml", "raw:[axes\nwidths = [4", "line 1, column 6: TOML syntax"),
+    ("not-utf8", "bytes", "not UTF-8"),
     # changes that would alter results already stored
     ("changed-replica-layers", {"replica": {"layers": 5000}}, "replica.layers"),
     ("changed-strips", {"replica": {"strips": 6}}, "replica.strips"),
@@ -114,8 +115,11 @@ def test_malformed_recipe(name, bad, field, small_store, tmp_path):
     assert len(lines) == 1, proc.stderr
     line = lines[0]
     assert field in line, line
-    # "<file>: <field> = <value>: <fix>" — the field, the value and the way out
-    assert re.search(r"error: .+: .+ = .+: .+", line), line
+    # "<file>: <field> = <value>: <fix>" — the field, the value and the way out; a missing
+    # key "<file>: <field> is missing: <fix>"; the file itself "<file>: <what>; <fix>"
+    assert re.search(r"error: .+: (.+ = .+|.+ is missing|line \d+, column \d+): .+", line) or (
+        name == "not-utf8" and re.search(r"error: [^:]+: .+; .+", line)
+    ), line
     assert snapshot(store) == before  # nothing stored was touched
 
 
@@ -126,9 +130,35 @@ def test_messages_keep_their_table_names(tmp_path):
     assert proc.returncode == 2 and "under [precision]" in proc.stderr, proc.stderr
 
 
+@pytest.mark.parametrize(
+    ("overrides", "shown", "fix"),
+    [
+        # values are shown as TOML (an inline table, a quoted string), not as Python
+        (
+            {"axes": {"disorder": [{"p": 0.1, "p_block": 0.2}]}},
+            "axes.disorder[0] = { p = 0.1, p_block = 0.2 }",
+            "{ p = 0.1 }",
+        ),
+        ({"campaign": {"entropy": "xyz"}}, 'campaign.entropy = "xyz"', "entropy = 0x5eed"),
+        # the fix fits the value: too many strips is not "at least 2"
+        ({"replica": {"strips": 10000}}, "replica.strips = 10000", "at most 4096"),
+        ({"replica": {"strips": 1}}, "replica.strips = 1", "from 2 to 4096"),
+        # one way of writing the ε range, as in the README
+        ({"axes": {"epsilon": [0.5]}}, "axes.epsilon[0] = 0.5", "9.42e-7 <= epsilon <= 0.1"),
+        ({"axes": {"epsilon": [1e-9]}}, "axes.epsilon[0] = 1e-9", "9.42e-7 <= epsilon <= 0.1"),
+    ],
+)
+def test_messages_read_as_toml(overrides, shown, fix, tmp_path):
+    proc = cli("plan", write_recipe(tmp_path / "r.toml", overrides))
+    assert proc.returncode == 2
+    assert shown in proc.stderr and fix in proc.stderr, proc.stderr
+    assert "{'" not in proc.stderr and "None" not in proc.stderr
+
+
 def test_missing_recipe_file(tmp_path):
     proc = cli("run", tmp_path / "nope.toml", "--store", tmp_path / "s")
     assert proc.returncode == 2 and "no such file" in proc.stderr
+    assert proc.stderr.count("nope.toml") == 1, proc.stderr  # named once
     assert "Traceback" not in proc.stderr
     assert not (tmp_path / "s").exists()
 
