@@ -159,6 +159,24 @@ def _duration(seconds: float | None) -> str:
 
 
 @app.command()
+def new(
+    path: Annotated[Path, typer.Argument(help="Recipe file to create (never overwritten).")],
+    name: Annotated[
+        str | None,
+        typer.Option("--name", help="Campaign name (default: the file name without .toml)."),
+    ] = None,
+) -> None:
+    """Write a commented template recipe with an entropy of its own."""
+    from sweepctl.campaign.template import write_template
+
+    out = write_template(path, name)
+    console.print(
+        f"wrote {out}: edit the axes and the precision, then `sweepctl plan {out}`",
+        highlight=False,
+    )
+
+
+@app.command()
 def plan(
     recipe: RecipeArg,
     json_out: Annotated[bool, typer.Option("--json", help="Print the plan as JSON.")] = False,
