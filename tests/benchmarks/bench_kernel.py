@@ -46,8 +46,13 @@ CASES = [
     ("p=1/3", 16, 1 / 3, 3_000),
     ("p=1/3", 64, 1 / 3, 200),
 ]
-TARGETS = {("clean", 8): 6.0, ("clean", 64): 3.0, ("clean", 256): 3.0, ("p=1/3", 16): 2.0,
-           ("p=1/3", 64): 1.5}
+TARGETS = {
+    ("clean", 8): 6.0,
+    ("clean", 64): 3.0,
+    ("clean", 256): 3.0,
+    ("p=1/3", 16): 2.0,
+    ("p=1/3", 64): 1.5,
+}
 
 
 def gamma_of(exponents: np.ndarray, n: int) -> tuple[float, float]:
@@ -66,8 +71,9 @@ def run_kernel(n: int, p: float, layers: int, seed: int):
 
 def run_peer(n: int, p: float, layers: int, seed: int):
     t0 = time.process_time()
-    ex = baseline_spectrum(n, 0.0, layers, strips=STRIPS, seed=seed, p_block=p, p_open=p,
-                           epsilon=EPS)
+    ex = baseline_spectrum(
+        n, 0.0, layers, strips=STRIPS, seed=seed, p_block=p, p_open=p, epsilon=EPS
+    )
     qr = 2.0 if p > 0 else 1.0 / QR_EVERY
     return time.process_time() - t0, ex, qr
 
@@ -82,10 +88,14 @@ def main() -> None:
     cases = CASES
     if args.only:
         cases = [CASES[int(i)] for i in args.only.split(",")]
-    print(f"{STRIPS} strips, x = 0, no warm-up, one BLAS thread, ε = {EPS:g}, "
-          f"median of {args.repeats} interleaved runs, process CPU seconds")
-    print(f"{'case':>6} {'N':>4} {'layers':>7} {'kernel s':>9} {'peer s':>8} {'ratio':>7}"
-          f" {'target':>6} {'QR/layer k|p':>13}  {'Γ kernel':>17}  {'Γ peer':>17}")
+    print(
+        f"{STRIPS} strips, x = 0, no warm-up, one BLAS thread, ε = {EPS:g}, "
+        f"median of {args.repeats} interleaved runs, process CPU seconds"
+    )
+    print(
+        f"{'case':>6} {'N':>4} {'layers':>7} {'kernel s':>9} {'peer s':>8} {'ratio':>7}"
+        f" {'target':>6} {'QR/layer k|p':>13}  {'Γ kernel':>17}  {'Γ peer':>17}"
+    )
     for label, n, p, layers in cases:
         layers = max(8, int(layers * args.layers_scale))
         tk, tp = [], []
@@ -97,9 +107,12 @@ def main() -> None:
         mk, mp = statistics.median(tk), statistics.median(tp)
         gk, sk = gamma_of(ek, n)
         gp, sp = gamma_of(ep, n)
-        print(f"{label:>6} {n:>4} {layers:>7} {mk:>9.3f} {mp:>8.3f} {mp / mk:>6.2f}×"
-              f" {TARGETS[(label, n)]:>5.1f}× {qk:>6.3f}|{qp:<6.3f}"
-              f"  {gk:7.4f} ± {sk:.4f}  {gp:7.4f} ± {sp:.4f}", flush=True)
+        print(
+            f"{label:>6} {n:>4} {layers:>7} {mk:>9.3f} {mp:>8.3f} {mp / mk:>6.2f}×"
+            f" {TARGETS[(label, n)]:>5.1f}× {qk:>6.3f}|{qp:<6.3f}"
+            f"  {gk:7.4f} ± {sk:.4f}  {gp:7.4f} ± {sp:.4f}",
+            flush=True,
+        )
 
 
 if __name__ == "__main__":
