@@ -50,7 +50,7 @@ def unit_phases(u, cos_out, sin_out):  # pragma: no cover - compiled
 
 
 @numba.njit(cache=True, nogil=True, boundscheck=False, fastmath={"contract"})
-def apply_columns(frame, kinds, pcos, psin, table, col0, col1):  # pragma: no cover - compiled
+def apply_columns(frame, kinds, pcos, psin, table, col0, col1, scratch):  # pragma: no cover
     """Apply node columns ``col0 <= c < col1`` of a chunk to every strip's frame, in place.
 
     Parameters
@@ -68,11 +68,22 @@ def apply_columns(frame, kinds, pcos, psin, table, col0, col1):  # pragma: no co
     col0, col1
         Column range within the chunk; column ``c`` is layer ``c // 2``, sublattice
         ``c % 2`` (0 = A on pairs ``(2j, 2j+1)``, 1 = B on ``(2j+1, 2j+2 mod 2N)``).
+    scratch
+        float64 ``(2, 2M)`` work rows.
+
+    The node block has real coefficients, so it acts on the ``2M`` interleaved reals of
+    a row pair as one contiguous loop (vectorised by the compiler); the phases then
+    multiply each row in a second pass over the scratch rows. The arithmetic, and
+    hence every bit, is the same as one fused loop over complex entries, which the
+    compiler did not vectorise (2.5× slower at N = 64, measured).
     """
     n_strips = frame.shape[0]
     n_links = frame.shape[1]
     n = n_links // 2
-    m_cols = frame.shape[2] // 2
+    width = frame.shape[2]
+    m_cols = width // 2
+    ta = scratch[0]
+    tb = scratch[1]
     for s_ in range(n_strips):
         for col in range(col0, col1):
             layer = col >> 1
@@ -93,17 +104,19 @@ def apply_columns(frame, kinds, pcos, psin, table, col0, col1):  # pragma: no co
                 cbi = psin[layer, s_, pb]
                 xa = frame[s_, ia]
                 xb = frame[s_, ib]
+                for r in range(width):
+                    a = xa[r]
+                    b = xb[r]
+                    ta[r] = c * a + s * b
+                    tb[r] = s * a + c * b
                 for m in range(m_cols):
-                    ar = xa[2 * m]
-                    ai = xa[2 * m + 1]
-                    br = xb[2 * m]
-                    bi = xb[2 * m + 1]
-                    tr = c * ar + s * br
-                    ti = c * ai + s * bi
-                    vr = s * ar + c * br
-                    vi = s * ai + c * bi
+                    tr = ta[2 * m]
+                    ti = ta[2 * m + 1]
                     xa[2 * m] = car * tr - cai * ti
                     xa[2 * m + 1] = car * ti + cai * tr
+                for m in range(m_cols):
+                    vr = tb[2 * m]
+                    vi = tb[2 * m + 1]
                     xb[2 * m] = cbr * vr - cbi * vi
                     xb[2 * m + 1] = cbr * vi + cbi * vr
 

@@ -256,10 +256,12 @@ class StripState:
                 "cos": np.ones((k, s, 4 * n)),
                 "sin": np.zeros((k, s, 4 * n)),
                 "bounds": np.empty(2 * k, dtype=np.int64),
+                "rows": np.empty((2, 2 * self.frame.shape[2])),
             }
         return self._work
 
     def _apply_scheduled(self, view, kinds, pcos, psin, table, g, measuring) -> None:
+        rows = self._buffers()["rows"]
         n_cols = g.size
         cum = np.cumsum(g)
         col = 0
@@ -272,7 +274,7 @@ class StripState:
                     self._qr(measuring)
                     continue
                 end = col + 1  # a single column above the budget: apply it alone
-            apply_columns(view, kinds, pcos, psin, table, col, end)
+            apply_columns(view, kinds, pcos, psin, table, col, end, rows)
             self.growth_since_qr += int(cum[end - 1]) - before
             col = end
 
