@@ -30,7 +30,7 @@ def test_expected_qrs_per_layer_match_the_kernel(case):
     layers = 6000
     state = StripState.start(model, strips=strips, seed=3, warmup=0)
     state.advance(layers)
-    counted = (state.reorthogonalisations - 1) / layers  # minus the QR of the start frame
+    counted = state.reorthogonalisations / layers  # the start frame's QR is not counted
     q = expected_qr_per_layer(model, strips)
     # derived: QRs form a renewal process; over `layers` layers the count's relative
     # spread is at most 1/√(QRs counted), so 4σ of that (plus one QR for the ends)
