@@ -30,7 +30,7 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 
 from sweepctl.campaign.cost import CostModel
-from sweepctl.campaign.recipe import Point, Recipe, RecipeError
+from sweepctl.campaign.recipe import Point, Recipe, RecipeError, TomlLiteral, toml_value
 
 __all__ = [
     "CostModel",
@@ -253,7 +253,7 @@ def check_compatible(recipe: Recipe, frozen: Frozen, source: str) -> None:
     if recipe.entropy is not None and recipe.entropy != frozen.entropy:
         raise RecipeError(
             "campaign.entropy",
-            f"{recipe.entropy:#x}",
+            TomlLiteral(f"{recipe.entropy:#x}"),
             f"the store was created with entropy {frozen.entropy:#x}; changing it would "
             "change every seed — remove the line or use a new store",
             source,
@@ -270,8 +270,9 @@ def check_compatible(recipe: Recipe, frozen: Frozen, source: str) -> None:
         if old.get(k) != new[k]:
             raise RecipeError(
                 field_name,
-                new[k],
-                f"the store was made with {field_name} = {old.get(k)!r}; changing it would "
+                TomlLiteral("(not set)") if new[k] is None else new[k],
+                f"the store was made with {field_name} = {toml_value(old.get(k))}; changing "
+                "it would "
                 "change existing results — restore it or use a new store",
                 source,
             )

@@ -44,10 +44,12 @@ __all__ = [
     "Point",
     "Recipe",
     "RecipeError",
+    "TomlLiteral",
     "canonical_float",
     "load_recipe",
     "parse_recipe",
     "smallest_safe_epsilon",
+    "toml_value",
 ]
 
 _SECTIONS = {
@@ -115,7 +117,15 @@ def toml_value(value: Any, limit: int = 60) -> str:
     return text if len(text) <= limit else text[: limit - 3] + "..."
 
 
+class TomlLiteral(str):
+    """Text shown as written (``0x5eed``), not quoted like a TOML string."""
+
+
 def _toml(v: Any) -> str:
+    if isinstance(v, TomlLiteral):
+        return str(v)
+    if v is None:
+        return "(not set)"
     if isinstance(v, bool):
         return "true" if v else "false"
     if isinstance(v, int):
