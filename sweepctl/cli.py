@@ -19,9 +19,28 @@ from sweepctl.errors import SweepctlError
 app = typer.Typer(
     help="Seeded, resumable Lyapunov-exponent campaigns for network models.",
     no_args_is_help=True,
-    add_completion=False,
+    add_completion=True,  # --install-completion / --show-completion for the user's shell
     pretty_exceptions_enable=False,
 )
+
+
+def _flags_without_type() -> None:
+    """Help screens show flags as flags: this typer prints ``--json <bool>`` as if the
+    flag took a value (its type column is filled for every option)."""
+    core = getattr(typer, "core", None)
+    option = getattr(core, "TyperOption", None)
+    original = getattr(option, "display_type_rich", None)
+    if original is None or getattr(original, "_sweepctl", False):
+        return
+
+    def display_type_rich(self, ctx):
+        return None if getattr(self, "is_flag", False) else original(self, ctx)
+
+    display_type_rich._sweepctl = True
+    option.display_type_rich = display_type_rich
+
+
+_flags_without_type()
 console = Console()
 err_console = Console(stderr=True)
 _DEBUG = {"on": False}
@@ -367,8 +386,14 @@ def run(
         str | None, typer.Option("--walltime", help="Job walltime HH:MM:SS.")
     ] = None,
     queue: Annotated[str | None, typer.Option("--queue", help="Partition / queue.")] = None,
-    min_jobs: Annotated[int | None, typer.Option("--min-jobs", min=0)] = None,
-    max_jobs: Annotated[int | None, typer.Option("--max-jobs", min=1)] = None,
+    min_jobs: Annotated[
+        int | None,
+        typer.Option("--min-jobs", min=0, help="Fewest worker jobs kept (adaptive scaling)."),
+    ] = None,
+    max_jobs: Annotated[
+        int | None,
+        typer.Option("--max-jobs", min=1, help="Most worker jobs at once (adaptive scaling)."),
+    ] = None,
 ) -> None:
     """Run or continue a campaign until every point reaches its precision (or cap)."""
     from sweepctl.bench import cost_model
@@ -442,8 +467,13 @@ app.add_typer(cluster_app, name="cluster")
 def cluster_script(
     profile: Annotated[str, typer.Argument(help="Profile name (or slurm/pbs/sge/lsf).")],
     profiles: Annotated[Path | None, typer.Option("--profiles", help="Profile file.")] = None,
-    walltime: Annotated[str | None, typer.Option("--walltime")] = None,
-    queue: Annotated[str | None, typer.Option("--queue")] = None,
+    walltime: Annotated[
+        str | None,
+        typer.Option("--walltime", help="Job walltime HH:MM:SS (wins over the profile)."),
+    ] = None,
+    queue: Annotated[
+        str | None, typer.Option("--queue", help="Partition / queue (wins over the profile).")
+    ] = None,
 ) -> None:
     """Print the job script a worker job of PROFILE would submit."""
     from sweepctl.cluster import job_script, load_profile
@@ -850,8 +880,10 @@ def report_cmd(
     ] = None,
     n_min: Annotated[int | None, typer.Option("--n-min", help="Smallest width used.")] = None,
     correction: Annotated[str, typer.Option("--correction", help="power or log.")] = "power",
-    resamples: Annotated[int, typer.Option("--resamples", min=20)] = 200,
-    seed: Annotated[int, typer.Option("--seed", min=0)] = 0,
+    resamples: Annotated[
+        int, typer.Option("--resamples", min=20, help="Gaussian resamples for the intervals.")
+    ] = 200,
+    seed: Annotated[int, typer.Option("--seed", min=0, help="Seed of the resampling.")] = 0,
     workers: FitWorkersOpt = None,
     scheduler: SchedulerOpt = None,
     scheduler_file: SchedulerFileOpt = None,
