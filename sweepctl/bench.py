@@ -218,7 +218,7 @@ def calibration_path() -> Path:
 
 
 def calibration_payload(rows: list[BenchRow], gemm: float | None = None) -> dict:
-    """The JSON document ``sweepctl bench --json`` writes and cost models read."""
+    """The JSON document ``sweepctl bench --out FILE`` writes and cost models read."""
     return {
         "kind": "sweepctl-kernel-calibration",
         "format": CALIBRATION_FORMAT,
@@ -231,7 +231,7 @@ def calibration_payload(rows: list[BenchRow], gemm: float | None = None) -> dict
 def cost_model(widths: list[int], path: str | Path | None = None, measure: bool = True):
     """A :class:`~sweepctl.campaign.cost.CostModel` and where it came from.
 
-    ``path`` (a ``sweepctl bench --json`` file) wins; then this machine's cached
+    ``path`` (a ``sweepctl bench --out`` file) wins; then this machine's cached
     calibration; otherwise a short measurement at ``widths`` (saved to the cache).
     Returns ``(None, reason)`` when nothing is stored and ``measure`` is false.
     """
@@ -247,7 +247,7 @@ def cost_model(widths: list[int], path: str | Path | None = None, measure: bool 
         except (OSError, ValueError, KeyError, TypeError) as exc:
             raise SweepctlError(
                 f"--calibration: cannot use {str(p)!r} ({exc}); write one with "
-                "sweepctl bench --json FILE"
+                "sweepctl bench --out FILE"
             ) from None
     cached = calibration_path()
     if cached.exists():
@@ -262,11 +262,13 @@ def cost_model(widths: list[int], path: str | Path | None = None, measure: bool 
     ws = sorted({int(w) for w in widths} | {4})
     rows = bench_widths(ws, strips=8, seconds=0.15)
     payload = calibration_payload(rows)
+    origin = f"measured now at N = {', '.join(map(str, ws))}"
     try:
         cached.parent.mkdir(parents=True, exist_ok=True)
         tmp = cached.with_suffix(".tmp")
         tmp.write_text(json.dumps(payload, indent=2) + "\n")
         os.replace(tmp, cached)
+        origin += f", saved to {cached} for later estimates"
     except OSError:
-        pass
-    return CostModel(payload["widths"]), f"measured now at N = {', '.join(map(str, ws))}"
+        origin += " (not saved: the cache directory is not writable)"
+    return CostModel(payload["widths"]), origin

@@ -56,6 +56,53 @@ def _fail(message: str, code: int = 2) -> None:
     sys.exit(code)
 
 
+def _strict(obj):
+    """``obj`` with every non-finite float as ``None`` and NumPy scalars as Python ones:
+    strict JSON (RFC 8259) has no NaN or Infinity, and strict parsers reject them."""
+    import math
+
+    import numpy as np
+
+    if isinstance(obj, dict):
+        return {str(k): _strict(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_strict(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return _strict(obj.tolist())
+    if isinstance(obj, np.generic):
+        obj = obj.item()
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    if obj is None or isinstance(obj, (bool, int, float, str)):
+        return obj
+    return str(obj)
+
+
+def json_text(obj) -> str:
+    """The one JSON convention of every command: strict JSON, indented, one document."""
+    return json.dumps(_strict(obj), indent=2, allow_nan=False)
+
+
+def _print_json(obj) -> None:
+    """``--json``: the result alone on standard output (messages go to standard error)."""
+    sys.stdout.write(json_text(obj) + "\n")
+    sys.stdout.flush()
+
+
+def _write_file(path: Path, data: bytes | str, option: str) -> None:
+    """Write ``data`` to ``path`` atomically, or fail with one line naming the option."""
+    from sweepctl.campaign.store import atomic_write_bytes
+
+    try:
+        if path.parent and not path.parent.exists():
+            path.parent.mkdir(parents=True, exist_ok=True)
+        atomic_write_bytes(path, data.encode() if isinstance(data, str) else data)
+    except OSError as exc:
+        raise UserError(
+            f"{option}: cannot write {str(path)!r} ({exc.strerror or exc}); choose a writable path"
+        ) from None
+
+
 def _parse_widths(text: str) -> list[int]:
     try:
         widths = [int(w) for w in text.split(",") if w.strip()]
@@ -95,17 +142,29 @@ def bench(
     seconds: Annotated[
         float, typer.Option("--seconds", min=0.05, help="Timed seconds per width.")
     ] = 1.0,
-    json_out: Annotated[
-        Path | None, typer.Option("--json", help="Write the calibration to this JSON file.")
+    out: Annotated[
+        Path | None,
+        typer.Option("--out", help="Write the calibration file (for --calibration) here."),
     ] = None,
+    json_out: Annotated[
+        bool, typer.Option("--json", help="Print the calibration as JSON instead of the table.")
+    ] = False,
 ) -> None:
     """Measure kernel throughput per width on this machine (one BLAS thread)."""
     from sweepctl.bench import bench_widths, calibration_payload, zgemm_gflops
 
     ws = _parse_widths(widths)
-    with console.status("compiling the kernel and measuring…"):
+    with err_console.status("compiling the kernel and measuring…"):
         rows = bench_widths(ws, strips=strips, seconds=seconds)
         gemm = zgemm_gflops()
+    payload = calibration_payload(rows, gemm)
+    if out is not None:
+        _write_file(out, json_text(payload) + "\n", "--out")
+    if json_out:
+        _print_json(payload)
+        if out is not None:
+            err_console.print(f"wrote {out}")
+        return
     table = Table(title=f"sweepctl bench — {strips} strips, one BLAS thread, x = 0")
     for col in (
         "N",
@@ -138,13 +197,8 @@ def bench(
         "updates and QRs) as a fraction of that zgemm rate; column µs: one layer without its "
         "QRs, per strip; QR µs: one QR of one strip's frame"
     )
-    if json_out is not None:
-        payload = calibration_payload(rows, gemm)
-        try:
-            json_out.write_text(json.dumps(payload, indent=2) + "\n")
-        except OSError as exc:
-            raise UserError(f"--json: cannot write {str(json_out)!r}: {exc.strerror}") from None
-        console.print(f"wrote {json_out}")
+    if out is not None:
+        console.print(f"wrote {out}")
 
 
 # ----------------------------------------------------------------------------- campaigns
@@ -153,7 +207,7 @@ StoreArg = Annotated[Path, typer.Argument(help="Campaign store directory.")]
 RecipeArg = Annotated[Path, typer.Argument(help="Recipe file (TOML).")]
 CalibrationOpt = Annotated[
     Path | None,
-    typer.Option("--calibration", help="Kernel calibration from `sweepctl bench --json`."),
+    typer.Option("--calibration", help="Kernel calibration from `sweepctl bench --out FILE`."),
 ]
 
 
@@ -227,7 +281,7 @@ def plan(
     if preview is not None:
         pl["store"] = {"path": str(store), **preview.to_json()}
     if json_out:
-        print(json.dumps(pl, indent=2))
+        _print_json(pl)
         return
     t = Table(title=f"plan for {rec.name!r}: {pl['points']} points")
     for c in (
@@ -488,22 +542,35 @@ def merge(
     out: Annotated[
         Path | None, typer.Option("--out", help="Output directory (default STORE/merged).")
     ] = None,
+    json_out: Annotated[
+        bool, typer.Option("--json", help="Print what was written as JSON.")
+    ] = False,
 ) -> None:
     """Write the per-point table (Parquet and CSV)."""
-    from sweepctl.campaign.store import Store, atomic_write_bytes
+    import io
+
+    from sweepctl.campaign.store import Store
     from sweepctl.campaign.summary import merge_table
 
     st = Store(store)
     df = merge_table(st)
     target = out or st.merged_dir
-    target.mkdir(parents=True, exist_ok=True)
-    import io
-
     buf = io.BytesIO()
     df.to_parquet(buf, index=False)
-    atomic_write_bytes(target / "points.parquet", buf.getvalue())
-    atomic_write_bytes(target / "points.csv", df.to_csv(index=False).encode())
+    _write_file(target / "points.parquet", buf.getvalue(), "--out")
+    _write_file(target / "points.csv", df.to_csv(index=False), "--out")
     reached = int(df["reached_target"].sum()) if len(df) else 0
+    if json_out:
+        _print_json(
+            {
+                "points": len(df),
+                "at_target": reached,
+                "replicas": int(df["replicas"].sum()) if "replicas" in df and len(df) else 0,
+                "parquet": str(target / "points.parquet"),
+                "csv": str(target / "points.csv"),
+            }
+        )
+        return
     console.print(
         f"{len(df)} points ({reached} at target) -> {target / 'points.parquet'}, "
         f"{target / 'points.csv'}"
@@ -526,7 +593,7 @@ def status(
     cost, _ = cost_model([4], calibration, measure=False)
     rows, totals = status_rows(st, cost)
     if json_out:
-        print(json.dumps({"totals": totals, "points": rows}, indent=2, default=str))
+        _print_json({"totals": totals, "points": rows})
         return
     t = Table(title=f"{totals['campaign']}: {totals['done']}/{totals['points']} points done")
     for c in ("N", "x", "p_block", "p_open", "ε", "replicas", "Γ", "rel. err", "state", "left"):
@@ -567,6 +634,9 @@ def audit(
     seed: Annotated[
         int | None, typer.Option("--seed", help="Seed for choosing the replicas.")
     ] = None,
+    json_out: Annotated[
+        bool, typer.Option("--json", help="Print the audit as JSON (exit status unchanged).")
+    ] = False,
 ) -> None:
     """Check integrity, trace seeds, recompute replicas; exit 1 on any problem."""
     from sweepctl.campaign.audit import audit_store, parse_selector, recompute, seed_trace
@@ -576,6 +646,24 @@ def audit(
     st.require()
     sel = parse_selector(point) if point else None
     rep = audit_store(st)
+    if json_out:
+        doc = {
+            "ok": None,
+            "files": rep.files,
+            "rows": rep.rows,
+            "problems": list(rep.problems),
+            "warnings": list(rep.warnings),
+        }
+        if sel is not None:
+            doc["seed_trace"] = seed_trace(st, sel)
+        if recompute_n:
+            rep.recomputed = recompute(st, recompute_n, seed, sel)
+            doc["recomputed"] = rep.recomputed
+        doc["ok"] = bool(rep.ok)
+        _print_json(doc)
+        if not rep.ok:
+            raise typer.Exit(1)
+        return
     console.print(
         f"integrity: {rep.files} files, {rep.rows} replica rows, {len(rep.problems)} problem(s)"
     )

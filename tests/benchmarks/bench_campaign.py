@@ -278,7 +278,7 @@ def big_store(tmp: Path) -> None:
     rpath, root = synthetic_store(tmp)
     made = time.perf_counter() - t0
     cal = tmp / "cal.json"
-    sweepctl("bench", "--widths", "4,8,16", "--seconds", "0.2", "--json", cal)
+    sweepctl("bench", "--widths", "4,8,16", "--seconds", "0.2", "--out", cal)
     print(
         f"\nsynthetic store: 100,000 invented replica rows in "
         f"{len(list((root / 'replicas').glob('*.parquet')))} files (made in {made:.1f} s)"

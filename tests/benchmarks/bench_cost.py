@@ -70,7 +70,7 @@ def main() -> None:
         d = Path(tmp)
         cal = d / "calibration.json"
         print("calibrating (sweepctl bench) …", flush=True)
-        sweepctl("bench", "--widths", "8,32,64", "--seconds", "1", "--json", cal)
+        sweepctl("bench", "--widths", "8,32,64", "--seconds", "1", "--out", cal)
         cost = CostModel(json.loads(cal.read_text())["widths"])
         rows = []
         for p, n in CASES:

@@ -21,7 +21,7 @@ def run_cli(*args: str, timeout: float = 300) -> subprocess.CompletedProcess:
 def test_bench_prints_table_and_writes_calibration(tmp_path):
     out = tmp_path / "cal.json"
     proc = run_cli(
-        "bench", "--widths", "2,4", "--strips", "2", "--seconds", "0.1", "--json", str(out)
+        "bench", "--widths", "2,4", "--strips", "2", "--seconds", "0.1", "--out", str(out)
     )
     assert proc.returncode == 0, proc.stderr
     assert "GFLOP/s" in proc.stdout and "zgemm" in proc.stdout
@@ -51,11 +51,20 @@ def test_bench_rejects_zero_strips():
     assert "--strips" in proc.stderr
 
 
-def test_bench_unwritable_json(tmp_path):
-    target = tmp_path / "missing-dir" / "cal.json"
+def test_bench_unwritable_out(tmp_path):
+    blocker = tmp_path / "a-file"
+    blocker.write_text("not a directory")
+    target = blocker / "cal.json"
     proc = run_cli(
-        "bench", "--widths", "2", "--strips", "2", "--seconds", "0.05", "--json", str(target)
+        "bench", "--widths", "2", "--strips", "2", "--seconds", "0.05", "--out", str(target)
     )
     assert proc.returncode == 2
     assert "Traceback" not in proc.stderr
-    assert "--json" in proc.stderr
+    assert "--out" in proc.stderr and len(proc.stderr.strip().splitlines()) == 1
+
+
+def test_bench_json_is_the_calibration_on_stdout():
+    proc = run_cli("bench", "--widths", "2", "--strips", "2", "--seconds", "0.05", "--json")
+    assert proc.returncode == 0, proc.stderr
+    data = json.loads(proc.stdout)  # the whole of stdout is one JSON document
+    assert data["kind"] == "sweepctl-kernel-calibration"

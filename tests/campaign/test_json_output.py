@@ -1,0 +1,85 @@
+"""One JSON convention: ``--json`` prints one strict JSON document (no NaN or Infinity)
+on standard output; files are written with ``--out`` and an unwritable path is one line."""
+
+from __future__ import annotations
+
+import json
+import shutil
+
+import pytest
+
+from tests.campaign.helpers import cli, write_recipe
+
+
+def strict(text: str):
+    """Parse as strict JSON (RFC 8259): NaN, Infinity and -Infinity are refused."""
+
+    def refuse(name):
+        raise ValueError(f"non-standard JSON constant {name}")
+
+    return json.loads(text, parse_constant=refuse)
+
+
+@pytest.fixture
+def unfinished_store(reference_store, tmp_path):
+    # no rows stored for any point: Γ unknown and relative errors infinite internally
+    store = tmp_path / "store"
+    shutil.copytree(reference_store, store)
+    for p in (store / "replicas").glob("part-*.parquet"):
+        p.unlink()
+    return store
+
+
+def test_status_json_is_strict_with_unknown_values(unfinished_store):
+    proc = cli("status", unfinished_store, "--json")
+    assert proc.returncode == 0, proc.stderr
+    doc = strict(proc.stdout)
+    assert doc["points"] and all(p["Gamma"] is None for p in doc["points"])
+    assert all(p["rel_err"] is None for p in doc["points"])
+
+
+@pytest.mark.parametrize(
+    "args",
+    [
+        ("status", "{store}", "--json"),
+        ("merge", "{store}", "--out", "{tmp}/m", "--json"),
+        ("audit", "{store}", "--json"),
+        ("plan", "{recipe}", "--json"),
+    ],
+    ids=["status", "merge", "audit", "plan"],
+)
+def test_every_json_is_one_strict_document_on_stdout(args, reference_store, tmp_path):
+    store = tmp_path / "store"
+    shutil.copytree(reference_store, store)
+    recipe = write_recipe(tmp_path / "r.toml")
+    fill = {"store": store, "tmp": tmp_path, "recipe": recipe}
+    proc = cli(*[a.format(**fill) for a in args])
+    assert proc.returncode == 0, proc.stderr
+    strict(proc.stdout)  # the whole of stdout, nothing else
+
+
+def test_audit_json_keeps_the_exit_status(reference_store, tmp_path):
+    store = tmp_path / "store"
+    shutil.copytree(reference_store, store)
+    (store / "replicas" / "part-foreign.parquet").write_bytes(b"not parquet")
+    proc = cli("audit", store, "--json")
+    doc = strict(proc.stdout)
+    assert proc.returncode == 1 and doc["ok"] is False and doc["problems"]
+
+
+def test_merge_to_an_unwritable_place_is_one_line(reference_store, tmp_path):
+    blocker = tmp_path / "a-file"
+    blocker.write_text("not a directory")
+    proc = cli("merge", reference_store, "--out", blocker / "out")
+    assert proc.returncode == 2, proc.stderr
+    assert "Traceback" not in proc.stderr and "--out" in proc.stderr
+    assert len(proc.stderr.strip().splitlines()) == 1
+
+
+def test_plan_says_where_it_keeps_the_calibration_it_measured(tmp_path):
+    recipe = write_recipe(tmp_path / "r.toml")
+    cache = tmp_path / "cache"
+    proc = cli("plan", recipe, env={"XDG_CACHE_HOME": str(cache), "COLUMNS": "400"})
+    assert proc.returncode == 0, proc.stderr
+    (saved,) = (cache / "sweepctl").glob("calibration-*.json")
+    assert f"saved to {saved}" in proc.stdout
