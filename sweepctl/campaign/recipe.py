@@ -339,14 +339,19 @@ def _nonempty_list(src: str, field: str, v: Any, example: str) -> list:
     return v
 
 
-def _unique(src: str, field: str, values: list, show: list) -> None:
+def _unique(src: str, field: str, values: list, show: list, indexed: bool = True) -> None:
     seen: dict = {}
-    for v, s in zip(values, show, strict=True):
+    for i, (v, s) in enumerate(zip(values, show, strict=True)):
         if v in seen:
+            j, first = seen[v]
+            where = f"{field}[{i}]" if indexed else field
             raise RecipeError(
-                field, s, f"duplicate value (same point as {toml_value(seen[v])}); remove one", src
+                where,
+                s,
+                f"the same point as {field}[{j}] = {toml_value(first)}; remove one",
+                src,
             )
-        seen[v] = s
+        seen[v] = (i, s)
 
 
 def _couplings(src: str, v: Any) -> tuple[float, ...]:
@@ -365,27 +370,38 @@ def _couplings(src: str, v: Any) -> tuple[float, ...]:
         b = _num(src, f"{field}.stop", v["stop"], "must be a number")
         n = _int(src, f"{field}.num", v["num"], 1, "must be an integer >= 1")
         if n > 1 and not b > a:
-            raise RecipeError(f"{field}.stop", v["stop"], "stop must be greater than start", src)
+            raise RecipeError(
+                f"{field}.stop",
+                v["stop"],
+                f"stop must be greater than start = {toml_value(v['start'])}; swap them",
+                src,
+            )
         for k, val in (("start", a), ("stop", b)):
             if abs(val) > _MAX_COUPLING:
                 raise RecipeError(
                     f"{field}.{k}",
                     v[k],
-                    f"|x| > {_MAX_COUPLING:g} is outside any useful range",
+                    f"couplings lie in -{_MAX_COUPLING:g} <= x <= {_MAX_COUPLING:g} (beyond, "
+                    "every strip is deep in a phase)",
                     src,
                 )
         xs = _decimal_range(a, b, n)
         cx = [canonical_float(x) for x in xs]
-        _unique(src, field, cx, xs)
+        _unique(src, field, cx, xs, indexed=False)
         return tuple(cx)
     lst = _nonempty_list(src, field, v, "couplings = [-0.2, 0.0, 0.2]")
     xs = [
-        _num(src, f"{field}[{i}]", x, "couplings must be finite numbers") for i, x in enumerate(lst)
+        _num(src, f"{field}[{i}]", x, f"a number with |x| <= {_MAX_COUPLING:g}, e.g. 0.0")
+        for i, x in enumerate(lst)
     ]
     for i, x in enumerate(xs):
         if abs(x) > _MAX_COUPLING:
             raise RecipeError(
-                f"{field}[{i}]", lst[i], f"|x| > {_MAX_COUPLING:g} is outside any useful range", src
+                f"{field}[{i}]",
+                lst[i],
+                f"couplings lie in -{_MAX_COUPLING:g} <= x <= {_MAX_COUPLING:g} (beyond, every "
+                "strip is deep in a phase)",
+                src,
             )
     cx = [canonical_float(x) for x in xs]
     _unique(src, field, cx, lst)
@@ -489,11 +505,19 @@ def parse_recipe(data: dict, source: str = "recipe") -> Recipe:
                 entropy = int(entropy, 0)
             except ValueError:
                 raise RecipeError(
-                    "campaign.entropy", c["entropy"], "write an integer, e.g. entropy = 0x5eed", src
+                    "campaign.entropy",
+                    c["entropy"],
+                    "an integer in [0, 2**128), e.g. entropy = 0x5eed (no quotes), or remove "
+                    "the line to have one drawn",
+                    src,
                 ) from None
         if not _is_int(entropy) or entropy < 0 or entropy >= 2**128:
             raise RecipeError(
-                "campaign.entropy", c["entropy"], "must be an integer in [0, 2**128)", src
+                "campaign.entropy",
+                c["entropy"],
+                "an integer in [0, 2**128), e.g. entropy = 0x5eed, or remove the line to have "
+                "one drawn",
+                src,
             )
     description = c.get("description", "")
     if not isinstance(description, str):
@@ -541,8 +565,12 @@ def parse_recipe(data: dict, source: str = "recipe") -> Recipe:
 
     target = _num(src, "precision.target", p["target"], "a relative precision such as 0.01")
     if not 0.0 < target < 1.0:
+        hint = f"; for {target:g} % write {target / 100:g}" if 1.0 <= target < 100.0 else ""
         raise RecipeError(
-            "precision.target", p["target"], "must be a relative error in (0, 1), e.g. 0.01", src
+            "precision.target",
+            p["target"],
+            f"a relative standard error with 0 < target < 1, e.g. 0.01{hint}",
+            src,
         )
     if "max_layers" in p and "max_cpu_hours" in p:
         raise RecipeError(
@@ -575,7 +603,13 @@ def parse_recipe(data: dict, source: str = "recipe") -> Recipe:
         )
     rl = rs = None
     if "layers" in r:
-        rl = _int(src, "replica.layers", r["layers"], 1, "must be a whole number of layers >= 1")
+        rl = _int(
+            src,
+            "replica.layers",
+            r["layers"],
+            1,
+            "a whole number of layers >= 1, e.g. layers = 10_000",
+        )
     elif "duration_seconds" in r:
         rs = _num(
             src,

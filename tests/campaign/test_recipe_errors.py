@@ -146,6 +146,15 @@ def test_messages_keep_their_table_names(tmp_path):
         # one way of writing the ε range, as in the README
         ({"axes": {"epsilon": [0.5]}}, "axes.epsilon[0] = 0.5", "9.42e-7 <= epsilon <= 0.1"),
         ({"axes": {"epsilon": [1e-9]}}, "axes.epsilon[0] = 1e-9", "9.42e-7 <= epsilon <= 0.1"),
+        # a duplicate names both entries; a percentage gets the fraction it meant
+        ({"axes": {"widths": [2, 3, 2]}}, "axes.widths[2] = 2", "axes.widths[0] = 2"),
+        ({"precision": {"target": 5}}, "precision.target = 5", "for 5 % write 0.05"),
+        (
+            {"axes": {"couplings": {"start": 0.2, "stop": -0.2, "num": 3}}},
+            "axes.couplings.stop = -0.2",
+            "greater than start = 0.2; swap them",
+        ),
+        ({"axes": {"couplings": [11.0]}}, "axes.couplings[0] = 11.0", "-10 <= x <= 10"),
     ],
 )
 def test_messages_read_as_toml(overrides, shown, fix, tmp_path):
