@@ -49,13 +49,17 @@ def main() -> None:
     ap.add_argument("--strips", type=int, default=200)
     ap.add_argument("--seed", type=int, default=20261202)
     a = ap.parse_args()
-    print(f"{'N':>3} {'x':>5} {'L':>6} {'S':>5} {'Gamma':>8} {'k=s2L/(NG)':>16} "
-          f"{'s2L/(NG^2)':>11} {'cpu s':>6}")
+    print(
+        f"{'N':>3} {'x':>5} {'L':>6} {'S':>5} {'Gamma':>8} {'k=s2L/(NG)':>16} "
+        f"{'s2L/(NG^2)':>11} {'cpu s':>6}"
+    )
     for n in map(int, a.widths.split(",")):
         for x in map(float, a.couplings.split(",")):
             m = measure(n, x, a.layers, a.strips, a.seed)
-            print(f"{m['N']:>3} {m['x']:>5g} {m['L']:>6} {m['strips']:>5} {m['Gamma']:>8.4f} "
-                  f"{m['k']:>8.4f} ± {m['k_err']:.4f} {m['k2']:>11.4f} {m['cpu']:>6.1f}")
+            print(
+                f"{m['N']:>3} {m['x']:>5g} {m['L']:>6} {m['strips']:>5} {m['Gamma']:>8.4f} "
+                f"{m['k']:>8.4f} ± {m['k_err']:.4f} {m['k2']:>11.4f} {m['cpu']:>6.1f}"
+            )
 
 
 if __name__ == "__main__":
