@@ -483,7 +483,7 @@ def run(
 
         st.root.mkdir(parents=True, exist_ok=True)
         opts.security = make_security(st.root)
-    needs = rec.replica_layers is None or rec.max_cpu_hours is not None
+    needs = rec.replica_layers is None or rec.max_cpu_hours is not None or rec.model is not None
     cost, _ = cost_model(list(rec.widths), calibration, measure=needs)
     display = _RunDisplay()
     try:

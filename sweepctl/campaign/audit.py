@@ -58,8 +58,11 @@ def audit_store(store: Store) -> AuditReport:
     _campaign, _, frozen = store_recipe(store)
     entropy = f"{frozen.entropy:#x}"
     pinned = REPLICA_SCHEMA.remove_metadata()
-    # part files written before the build columns were added are still this store's
-    earlier = pa.schema([f for f in pinned if f.name not in ADDED_COLUMNS])
+    # part files written before columns were added are still this store's
+    earlier = [
+        pa.schema([f for f in pinned if f.name not in ADDED_COLUMNS[i:]])
+        for i in range(len(ADDED_COLUMNS))
+    ]
     readable = True
     for path in store.part_files():
         rep.files += 1
@@ -70,7 +73,8 @@ def audit_store(store: Store) -> AuditReport:
             readable = False
             continue
         if not (
-            t.schema.remove_metadata().equals(pinned) or t.schema.remove_metadata().equals(earlier)
+            t.schema.remove_metadata().equals(pinned)
+            or any(t.schema.remove_metadata().equals(e) for e in earlier)
         ):
             rep.problems.append(f"{path.name}: schema differs from the pinned replica schema")
             readable = False

@@ -147,6 +147,7 @@ class Driver:
         self.say = report or (lambda _m: None)
         self.progress: dict[str, PointProgress] = {}
         self.frozen: Frozen | None = None
+        self._rehearsal = None
         self.meta: dict = {}
         self.conn: Connection | None = None
         self.futures = None
@@ -255,7 +256,12 @@ class Driver:
         else:
             self.store.create(prep.campaign)
         self.frozen = prep.frozen
-        self.meta = {"name": prep.campaign["name"], "entropy": prep.campaign["frozen"]["entropy"]}
+        self._rehearsal = prep.frozen.rehearsal()
+        self.meta = {
+            "name": prep.campaign["name"],
+            "entropy": prep.campaign["frozen"]["entropy"],
+            "model": prep.frozen.model,
+        }
         rows = self.store.read_replicas(columns=["point_key", "replica", "gamma_strips"])
         preview, self.progress = preview_run(self.recipe, prep.frozen, rows, prep.previous)
         return preview
@@ -298,6 +304,8 @@ class Driver:
                 strips=frozen.strips,
                 checkpoint=str(self.store.checkpoint_path(pp.point.short, r)),
                 checkpoint_seconds=self.recipe.checkpoint_seconds,
+                model=self._rehearsal,
+                virtual_seconds=self._virtual_seconds(pp),
             )
             a = self.attempts.get(k, 0)
             key = spec.key if a == 0 else f"{spec.key}-attempt{a}"
@@ -306,6 +314,18 @@ class Driver:
             self.inflight[k] = fut
             self.futures.add(fut)
             self._event({"event": "submitted", "point": pp.point.key, "replica": r, "key": key})
+
+    def _virtual_seconds(self, pp: PointProgress) -> float | None:
+        """A rehearsal replica's price on the network kernel (what its row is charged)."""
+        if self._rehearsal is None:
+            return None
+        if self.cost is None:
+            raise StoreError(
+                "a rehearsal campaign charges each replica what the network kernel would "
+                "spend, which needs a kernel calibration: give --calibration FILE "
+                "(from `sweepctl bench --out FILE`)"
+            )
+        return self.cost.replica_seconds(pp.point, pp.layers, pp.warmup, self.frozen.strips)
 
     def result(self, fut) -> None:
         """A replica came back: buffer its row, advance its point's rounds."""

@@ -31,6 +31,7 @@ import numpy as np
 
 from sweepctl.campaign.cost import CostModel
 from sweepctl.campaign.recipe import Point, Recipe, RecipeError, TomlLiteral, toml_value
+from sweepctl.kernel.rehearsal import RehearsalModel
 
 __all__ = [
     "CostModel",
@@ -91,6 +92,13 @@ class Frozen:
     cap_rule: dict = field(default_factory=dict)
     #: strip estimates before a point may stop (0 in stores made before the rule)
     min_strip_estimates: int = MIN_STRIP_ESTIMATES
+    #: what computes a replica: ``{"kind": "network"}`` or the rehearsal law
+    #: (:meth:`~sweepctl.kernel.rehearsal.RehearsalModel.to_dict`); never changes
+    model: dict = field(default_factory=lambda: {"kind": "network"})
+
+    def rehearsal(self) -> RehearsalModel | None:
+        """The rehearsal law, or None for the network kernel."""
+        return RehearsalModel.from_dict(self.model) if self.model["kind"] == "rehearsal" else None
 
     def warmup_for(self, width: int) -> int:
         from sweepctl.kernel.network import default_warmup
@@ -139,6 +147,8 @@ class Frozen:
             cap_rule=d.get("cap_rule", {}),
             # stores made before the rule keep the decisions they were made with
             min_strip_estimates=int(d.get("min_strip_estimates", 0)),
+            # stores made before models could be chosen ran the network kernel
+            model=d.get("model") or {"kind": "network"},
         )
 
 
@@ -182,6 +192,7 @@ def freeze(
             warmup=recipe.warmup,
             replica_rule=_rule(recipe),
             cap_rule=_cap_rule(recipe),
+            model=recipe.model_record,
         )
     else:
         fz = Frozen.from_json(previous.to_json())
@@ -258,6 +269,7 @@ def check_compatible(recipe: Recipe, frozen: Frozen, source: str) -> None:
             "change every seed — remove the line or use a new store",
             source,
         )
+    _check_model(recipe, frozen, source)
     old = frozen.replica_rule
     new = _rule(recipe)
     names = {
@@ -278,6 +290,23 @@ def check_compatible(recipe: Recipe, frozen: Frozen, source: str) -> None:
             )
 
 
+def _check_model(recipe: Recipe, frozen: Frozen, source: str) -> None:
+    """Refuse a change of the model kind or of any rehearsal parameter."""
+    old, new = frozen.model, recipe.model_record
+    if old == new:
+        return
+    keys = ["kind"] + [k for k in (*old, *new) if k != "kind"]
+    k = next(k for k in dict.fromkeys(keys) if old.get(k) != new.get(k))
+    shown = new.get(k, "network" if k == "kind" else None)
+    raise RecipeError(
+        f"model.{k}",
+        TomlLiteral("(not set)") if shown is None else shown,
+        f"the store was made with model.{k} = {toml_value(old.get(k))}; changing the model "
+        "would change existing results — restore it or use a new store",
+        source,
+    )
+
+
 @dataclass(frozen=True)
 class ReplicaSpec:
     """Everything a worker needs to compute one replica (plain data, picklable)."""
@@ -290,10 +319,18 @@ class ReplicaSpec:
     strips: int
     checkpoint: str
     checkpoint_seconds: float
+    #: the rehearsal law, or None for the network kernel
+    model: RehearsalModel | None = None
+    #: a rehearsal replica's CPU seconds as the network kernel would spend them (the
+    #: cost model's price, set by the driver); what its row stores as cpu_seconds
+    virtual_seconds: float | None = None
 
     @classmethod
     def from_row(cls, row: dict) -> ReplicaSpec:
         """The computation behind a stored replica row (no checkpoint), to recompute it."""
+        import json
+
+        rec = json.loads(row["model"]) if row.get("model") else {"kind": "network"}
         return cls(
             point=Point(row["p_block"], row["p_open"], row["epsilon"], row["width"], row["x"]),
             replica=row["replica"],
@@ -303,6 +340,7 @@ class ReplicaSpec:
             strips=row["strips"],
             checkpoint="",
             checkpoint_seconds=1e9,
+            model=RehearsalModel.from_dict(rec) if rec["kind"] == "rehearsal" else None,
         )
 
     @property
@@ -318,6 +356,10 @@ class ReplicaSpec:
             f"{self.point.key}|r={self.replica}|e={self.entropy:#x}"
             f"|L={self.layers}|w={self.warmup}|S={self.strips}"
         )
+        if self.model is not None:  # network digests stay as they were
+            import json
+
+            ident += "|model=" + json.dumps(self.model.to_dict(), sort_keys=True)
         return hashlib.sha256(ident.encode()).hexdigest()
 
 
@@ -431,6 +473,7 @@ def make_plan(
     wall_min = math.ceil((6 * rep_secs + 600) / 900.0) * 15
     return {
         "campaign": recipe.name,
+        "model": fz.model,
         "points": len(points),
         "replicas": total_reps,
         "cpu_hours": total_hours,

@@ -22,6 +22,12 @@ A recipe is a TOML file::
     strips = 8
     initial = 2                # replicas in a point's first round
 
+    [model]                    # optional; kind = "network" (the default) or "rehearsal"
+    kind = "rehearsal"         # a known scaling law instead of the kernel (see
+    nu = 2.6                   # sweepctl.kernel.rehearsal for the exact form)
+    Gamma_c = 0.8
+    F = [0.4, 0.0, 0.01]       # coefficients of rho, rho^2, ... with rho = (x - x_c) N^(1/nu)
+
 Everything is checked before anything runs or is written; every problem is reported as
 ``RecipeError`` with one line naming the field, the value and the way out.
 """
@@ -39,6 +45,7 @@ from pathlib import Path
 from typing import Any
 
 from sweepctl.errors import SweepctlError
+from sweepctl.kernel.rehearsal import RehearsalModel
 
 __all__ = [
     "Point",
@@ -57,12 +64,14 @@ _SECTIONS = {
     "axes": {"widths", "couplings", "disorder", "epsilon"},
     "precision": {"target", "max_layers", "max_cpu_hours"},
     "replica": {"layers", "duration_seconds", "warmup", "strips", "initial", "checkpoint_seconds"},
+    "model": {"kind", "nu", "y", "Gamma_c", "x_c", "F", "correction", "noise"},
 }
 _REQUIRED = {
     "campaign": {"name"},
     "axes": {"widths", "couplings"},
     "precision": {"target"},
     "replica": set(),
+    "model": set(),
 }
 #: how the fix for a missing required key reads
 _EXAMPLES = {
@@ -234,6 +243,13 @@ class Recipe:
     initial: int
     checkpoint_seconds: float
     description: str = ""
+    #: the rehearsal law, or None for the network kernel
+    model: RehearsalModel | None = None
+
+    @property
+    def model_record(self) -> dict:
+        """The model as frozen in a store: ``{"kind": "network"}`` or the rehearsal law."""
+        return {"kind": "network"} if self.model is None else self.model.to_dict()
 
     def points(self) -> list[Point]:
         """All points, sorted by their canonical parameters."""
@@ -253,8 +269,11 @@ class Recipe:
         return self.warmup if self.warmup is not None else default_warmup(width)
 
     def canonical(self) -> dict:
-        """Canonical dict (sorted, normalised); its JSON is what :meth:`digest` hashes."""
-        return {
+        """Canonical dict (sorted, normalised); its JSON is what :meth:`digest` hashes.
+
+        A network recipe has no ``model`` key, so its digest is what it was before
+        recipes could name a model."""
+        d = {
             "name": self.name,
             "entropy": None if self.entropy is None else f"{self.entropy:#x}",
             "widths": list(self.widths),
@@ -271,6 +290,9 @@ class Recipe:
             "initial": self.initial,
             "checkpoint_seconds": self.checkpoint_seconds,
         }
+        if self.model is not None:
+            d["model"] = self.model.to_dict()
+        return d
 
     @classmethod
     def from_canonical(cls, d: dict) -> Recipe:
@@ -291,6 +313,7 @@ class Recipe:
             strips=d["strips"],
             initial=d["initial"],
             checkpoint_seconds=d["checkpoint_seconds"],
+            model=RehearsalModel.from_dict(d["model"]) if d.get("model") else None,
         )
 
     def digest(self) -> str:
@@ -462,6 +485,129 @@ def _disorder(src: str, v: Any) -> tuple[tuple[float, float], ...]:
     return tuple(out)
 
 
+_MODEL_KINDS = ("network", "rehearsal")
+_MAX_F_TERMS = 8
+#: what each rehearsal key means and its allowed range, for the fix of a bad value
+_MODEL_RANGES = {
+    "nu": ("the localisation-length exponent", 0.2, 10.0, "0.2 <= nu <= 10", "nu = 2.6"),
+    "Gamma_c": ("Gamma at the critical point", 0.0, 10.0, "0 < Gamma_c <= 10", "Gamma_c = 0.8"),
+    "x_c": (
+        "the critical coupling",
+        -_MAX_COUPLING,
+        _MAX_COUPLING,
+        "-10 <= x_c <= 10",
+        "x_c = 0.0",
+    ),
+    "y": ("the leading irrelevant exponent", -5.0, 0.0, "-5 <= y < 0", "y = -0.4"),
+    "correction": (
+        "the amplitude of the correction N^y",
+        -10.0,
+        10.0,
+        "-10 <= correction <= 10",
+        "correction = 0.1",
+    ),
+    "noise": (
+        "the factor on the network's strip noise",
+        0.0,
+        100.0,
+        "0 < noise <= 100",
+        "noise = 1.0",
+    ),
+}
+
+
+def _model_number(src: str, m: dict, k: str) -> float:
+    what, lo, hi, rng, example = _MODEL_RANGES[k]
+    field = f"model.{k}"
+    v = _num(src, field, m[k], f"{what}: a number with {rng}, e.g. {example}")
+    open_lo = k in ("Gamma_c", "noise")
+    open_hi = k == "y"
+    if v < lo or v > hi or (open_lo and v == lo) or (open_hi and v == hi):
+        raise RecipeError(field, m[k], f"{what} must satisfy {rng}, e.g. {example}", src)
+    return v
+
+
+def _model(
+    src: str, m: dict, widths: list[int], couplings: tuple[float, ...]
+) -> RehearsalModel | None:
+    """The ``[model]`` table: ``None`` for the network kernel, or the rehearsal law."""
+    kind = m.get("kind", "network")
+    if kind not in _MODEL_KINDS:
+        raise RecipeError(
+            "model.kind",
+            kind,
+            'kind = "network" (the transfer-matrix kernel) or kind = "rehearsal" (a known '
+            "scaling law, no kernel CPU)",
+            src,
+        )
+    if kind == "network":
+        for k in sorted(set(m) - {"kind"}):
+            raise RecipeError(
+                f"model.{k}",
+                m[k],
+                'applies to kind = "rehearsal" only; remove it, or set kind = "rehearsal"',
+                src,
+            )
+        return None
+    for k in ("nu", "Gamma_c", "F"):
+        if k not in m:
+            example = "F = [0.4, 0.0, 0.01]" if k == "F" else _MODEL_RANGES[k][4]
+            raise RecipeError(
+                f"model.{k}", None, f'add {example} under [model] (kind = "rehearsal")', src
+            )
+    nu = _model_number(src, m, "nu")
+    gamma_c = _model_number(src, m, "Gamma_c")
+    x_c = _model_number(src, m, "x_c") if "x_c" in m else 0.0
+    correction = _model_number(src, m, "correction") if "correction" in m else 0.0
+    y = _model_number(src, m, "y") if "y" in m else None
+    noise = _model_number(src, m, "noise") if "noise" in m else 1.0
+    if correction != 0.0 and y is None:
+        raise RecipeError(
+            "model.y",
+            None,
+            f"correction = {toml_value(m['correction'])} needs its exponent: add y = -0.4 "
+            "(-5 <= y < 0) under [model], or remove correction",
+            src,
+        )
+    fl = m["F"]
+    f_fix = (
+        f"the coefficients of rho, rho^2, ... (1 to {_MAX_F_TERMS} numbers, each in "
+        "[-1000, 1000]), e.g. F = [0.4, 0.0, 0.01]"
+    )
+    if not isinstance(fl, list) or not 1 <= len(fl) <= _MAX_F_TERMS:
+        raise RecipeError("model.F", fl, f_fix, src)
+    coef = []
+    for i, f in enumerate(fl):
+        v = _num(src, f"model.F[{i}]", f, f_fix)
+        if abs(v) > 1000.0:
+            raise RecipeError(f"model.F[{i}]", f, f_fix, src)
+        coef.append(v)
+    if not any(coef):
+        raise RecipeError(
+            "model.F",
+            fl,
+            "all zero: Gamma would not depend on x and nu could not be seen; give a "
+            "non-zero coefficient, e.g. F = [0.4]",
+            src,
+        )
+    law = RehearsalModel(
+        nu=nu, Gamma_c=gamma_c, F=tuple(coef), x_c=x_c, y=y, correction=correction, noise=noise
+    )
+    for n in widths:
+        for x in couplings:
+            g = law.Gamma(n, x)
+            if not (math.isfinite(g) and g > 0.0):
+                raise RecipeError(
+                    "model.F",
+                    fl,
+                    f"the law gives Gamma = {g:.3g} at N = {n}, x = {x:g}, but Gamma (N times "
+                    "the smallest positive exponent) is positive: change F, Gamma_c or "
+                    "correction, or narrow axes.couplings",
+                    src,
+                )
+    return law
+
+
 def parse_recipe(data: dict, source: str = "recipe") -> Recipe:
     """Validate a decoded TOML document completely and return the :class:`Recipe`."""
     if not isinstance(data, dict):  # pragma: no cover - tomllib always gives a dict
@@ -490,7 +636,7 @@ def parse_recipe(data: dict, source: str = "recipe") -> Recipe:
             if k not in body:
                 raise RecipeError(f"{sec}.{k}", None, f"add {_EXAMPLES[k]} under [{sec}]", source)
 
-    c, a, p, r = (data.get(s, {}) for s in ("campaign", "axes", "precision", "replica"))
+    c, a, p, r, m = (data.get(s, {}) for s in ("campaign", "axes", "precision", "replica", "model"))
     src = source
 
     name = c["name"]
@@ -669,6 +815,8 @@ def parse_recipe(data: dict, source: str = "recipe") -> Recipe:
             src,
         )
 
+    model = _model(src, m, widths, couplings)
+
     recipe = Recipe(
         name=name.strip(),
         entropy=entropy,
@@ -686,6 +834,7 @@ def parse_recipe(data: dict, source: str = "recipe") -> Recipe:
         initial=initial,
         checkpoint_seconds=ck,
         description=description,
+        model=model,
     )
     n_points = len(widths) * len(couplings) * len(disorder) * len(eps)
     if n_points > _MAX_POINTS:

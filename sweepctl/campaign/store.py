@@ -52,7 +52,7 @@ __all__ = [
     "cpu_identity",
 ]
 
-SCHEMA_VERSION = "replicas/2"
+SCHEMA_VERSION = "replicas/3"
 CONVENTIONS = (
     "Chalker-Coddington strip, N nodes per column, 2N links, periodic; exponents per layer; "
     "Gamma = N * gamma (smallest positive exponent); gamma_strips holds Gamma per strip; "
@@ -92,11 +92,18 @@ REPLICA_SCHEMA = pa.schema(
         # replicas/2: the rest of the build a result's bits depend on
         ("numba_version", pa.string()),
         ("cpu", pa.string()),
+        # replicas/3: what computed the row (JSON: {"kind": "network"} or the rehearsal
+        # law), and the CPU and wall seconds really spent; a rehearsal row's cpu_seconds
+        # and wall_seconds are what the network kernel would have spent
+        ("model", pa.string()),
+        ("real_cpu_seconds", pa.float64()),
+        ("real_wall_seconds", pa.float64()),
     ],
     metadata={"sweepctl.schema": SCHEMA_VERSION, "sweepctl.conventions": CONVENTIONS},
 )
-#: Columns added after ``replicas/1``: part files written before them read as null.
-ADDED_COLUMNS = ("numba_version", "cpu")
+#: Columns added after ``replicas/1``, in the order they were added (each a suffix of
+#: the schema): part files written before them read as null.
+ADDED_COLUMNS = ("numba_version", "cpu", "model", "real_cpu_seconds", "real_wall_seconds")
 #: What a result's bits depend on besides its seed (compared by resume and audit).
 BUILD_COLUMNS = ("sweepctl_version", "git_commit", "numpy_version", "numba_version", "cpu")
 
@@ -604,7 +611,7 @@ def _read_part(path: Path, columns: list[str] | None, want: pa.Schema) -> pa.Tab
         cols = [c for c in want.names if c not in added]
         table = pf.read(columns=cols)
         for c in added:  # written before the column existed
-            table = table.append_column(want.field(c), pa.nulls(table.num_rows, pa.string()))
+            table = table.append_column(want.field(c), pa.nulls(table.num_rows, want.field(c).type))
         table = table.select(want.names)
         return table if table.schema.equals(want) else table.cast(want)
     except (OSError, KeyError, ValueError, pa.ArrowException) as exc:

@@ -62,6 +62,16 @@ warmup = "auto"                  # default "auto" = max(5N, 32) layers discarded
 strips = 8                       # default 8; independent strips per replica, 2-4096; fixed
 initial = 8                      # default 2; replicas in a point's first round, 1-10000
 checkpoint_seconds = 180         # default 180; seconds between checkpoints of a replica
+
+[model]
+# What computes a replica; fixed. Default "network" (the transfer-matrix kernel).
+# "rehearsal" draws strips around a known law instead, charged the kernel's CPU, to
+# rehearse a plan or a cluster set-up: Gamma = Gamma_c + F[0] rho + F[1] rho^2 + ...
+# + correction N^y with rho = (x - x_c) N^(1/nu), strip noise as the kernel's times
+# noise. Keys: nu (0.2-10), Gamma_c (0-10), F (1-8 numbers) [required]; x_c (default
+# 0), correction (default 0), y (-5 <= y < 0, needed with a correction), noise
+# (default 1). Example: recipes/rehearsal.toml.
+kind = "network"
 """
 
 

@@ -4,6 +4,13 @@ Runs inside Dask worker processes (and in ``audit`` recomputation). A replica is
 pure function of its :class:`~sweepctl.campaign.plan.ReplicaSpec`; a checkpoint carries the
 whole strip state, so a replica resumed from one is bit-identical to one that was
 never interrupted.
+
+A rehearsal replica (:mod:`sweepctl.kernel.rehearsal`) is drawn whole in microseconds,
+so it writes no checkpoint: an interrupted one is simply drawn again, bit-identically.
+Its row stores as ``cpu_seconds`` and ``wall_seconds`` what the network kernel would
+have spent (the driver's cost-model price, :attr:`ReplicaSpec.virtual_seconds`), so
+status, ETAs and CPU budgets read as in a real campaign; ``real_cpu_seconds`` and
+``real_wall_seconds`` hold what was really spent.
 """
 
 from __future__ import annotations
@@ -59,6 +66,9 @@ class ReplicaOutput:
     code: dict
     #: what the worker wants logged (e.g. a checkpoint of another build discarded)
     notes: list[str] = field(default_factory=list)
+    #: seconds really spent (equal to cpu/wall_seconds unless those are virtual)
+    real_cpu_seconds: float | None = None
+    real_wall_seconds: float | None = None
 
     def row(self) -> dict:
         """The replica row of the store's pinned schema."""
@@ -90,6 +100,16 @@ class ReplicaOutput:
             "started": self.started,
             "finished": self.finished,
             **self.code,
+            "model": json.dumps(
+                self.spec.model.to_dict() if self.spec.model is not None else {"kind": "network"},
+                sort_keys=True,
+            ),
+            "real_cpu_seconds": (
+                self.cpu_seconds if self.real_cpu_seconds is None else self.real_cpu_seconds
+            ),
+            "real_wall_seconds": (
+                self.wall_seconds if self.real_wall_seconds is None else self.real_wall_seconds
+            ),
         }
 
 
@@ -138,8 +158,42 @@ def _write_checkpoint(path: Path, spec: ReplicaSpec, state: StripState, header: 
     atomic_write_bytes(path, _MAGIC + struct.pack("<I", len(head)) + head + state.to_bytes())
 
 
+def _rehearse(spec: ReplicaSpec) -> ReplicaOutput:
+    """A rehearsal replica: strip values drawn from the law with the replica's seed."""
+    t_wall0 = time.perf_counter()
+    t_cpu0 = time.process_time()
+    started = datetime.now(UTC)
+    _log_event("started", spec)
+    p = spec.point
+    seed = replica_seed(spec.entropy, p, spec.replica)
+    g = spec.model.strip_gammas(p.width, p.x, spec.layers, spec.strips, seed)
+    real_cpu = time.process_time() - t_cpu0
+    real_wall = time.perf_counter() - t_wall0
+    virtual = spec.virtual_seconds
+    worker, host = _identity()
+    return ReplicaOutput(
+        spec=spec,
+        gamma_strips=[float(v) for v in g],
+        exponents=[],  # the law has Γ only, no spectrum
+        layers=spec.layers,
+        resumed_at_layer=0,
+        cpu_seconds=real_cpu if virtual is None else virtual,
+        wall_seconds=real_wall if virtual is None else virtual,
+        worker=worker,
+        host=host,
+        batch_job_id=next((os.environ[k] for k in _BATCH_ENV if os.environ.get(k)), None),
+        started=started,
+        finished=datetime.now(UTC),
+        code=code_version(),
+        real_cpu_seconds=real_cpu,
+        real_wall_seconds=real_wall,
+    )
+
+
 def compute_replica(spec: ReplicaSpec, *, use_checkpoint: bool = True) -> ReplicaOutput:
     """Compute (or finish) one replica."""
+    if spec.model is not None:
+        return _rehearse(spec)
     _one_blas_thread()
     t_wall0 = time.perf_counter()
     t_cpu0 = time.process_time()

@@ -1,4 +1,5 @@
-"""Transfer-matrix kernel: network model, strip state, Lyapunov engine, QR schedule.
+"""Transfer-matrix kernel: network model, strip state, Lyapunov engine, QR schedule;
+the rehearsal model (a known scaling law with network-like noise).
 
 Pure NumPy/SciPy (plus compiled inner loops); no I/O, no Dask. The public entry
 point is :func:`lyapunov_spectrum`; the campaign layer drives :class:`StripState`.
@@ -22,6 +23,8 @@ _WHERE = {
     "product_spectrum": "engine",
     "LayerDraws": "network",
     "NetworkModel": "network",
+    "NOISE_CONSTANT": "rehearsal",
+    "RehearsalModel": "rehearsal",
     "dense_column": "network",
     "dense_layer": "network",
     "draw_layers": "network",
