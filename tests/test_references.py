@@ -8,7 +8,7 @@ from pathlib import Path
 
 ROOT = Path(__file__).resolve().parents[1]
 REFS = ROOT / "tests" / "REFERENCES.md"
-CITATION = re.compile(r"\[([KMPS][0-9]+)\]")
+CITATION = re.compile(r"\[([A-Z][0-9]+)\]")
 
 
 def _sources():
@@ -21,7 +21,7 @@ def _sources():
 
 
 def _entries() -> set[str]:
-    return set(re.findall(r"^\*\*\[([KMPS][0-9]+)\]", REFS.read_text(), flags=re.MULTILINE))
+    return set(re.findall(r"^\*\*\[([A-Z][0-9]+)\]", REFS.read_text(), flags=re.MULTILINE))
 
 
 def test_the_references_file_has_entries():
@@ -44,9 +44,10 @@ def test_only_files_inside_the_repository_are_cited():
     for path in _sources():
         for m in re.finditer(r"([\w./-]*REFERENCES\.md)", path.read_text(encoding="utf-8")):
             cited = m.group(1)
-            if cited not in {"REFERENCES.md", "tests/REFERENCES.md"} and not (
-                ROOT / cited
-            ).exists():
+            if (
+                cited not in {"REFERENCES.md", "tests/REFERENCES.md"}
+                and not (ROOT / cited).exists()
+            ):
                 bad.append((path.relative_to(ROOT).as_posix(), cited))
             if cited == "REFERENCES.md" and path.parent != REFS.parent:
                 bad.append((path.relative_to(ROOT).as_posix(), cited))
