@@ -315,6 +315,14 @@ class _RunDisplay:
             self._plain()
 
 
+DashboardOpt = Annotated[
+    str | None,
+    typer.Option(
+        "--dashboard",
+        help="Serve the Dask dashboard on PORT or HOST:PORT (default host 127.0.0.1; "
+        "'on' picks a free port); its address is printed.",
+    ),
+]
 SchedulerOpt = Annotated[
     str | None, typer.Option("--scheduler", help="Address of a running Dask scheduler.")
 ]
@@ -346,6 +354,21 @@ def run(
     queue: Annotated[str | None, typer.Option("--queue", help="Partition / queue.")] = None,
     min_jobs: Annotated[int | None, typer.Option("--min-jobs", min=0)] = None,
     max_jobs: Annotated[int | None, typer.Option("--max-jobs", min=1)] = None,
+    lease_expiry: Annotated[
+        str | None,
+        typer.Option(
+            "--lease-expiry",
+            help="How long the store's lease lasts without a heartbeat before a driver on "
+            "any host may take over (default 10m; e.g. 90s, 5m).",
+        ),
+    ] = None,
+    lease_wait: Annotated[
+        str | None,
+        typer.Option(
+            "--lease-wait", help="Wait this long for another driver's lease to end or expire."
+        ),
+    ] = None,
+    dashboard: DashboardOpt = None,
 ) -> None:
     """Run or continue a campaign until every point reaches its precision (or cap)."""
     from sweepctl.bench import cost_model
@@ -368,13 +391,16 @@ def run(
         workers=workers,
         scheduler=scheduler,
         scheduler_file=str(scheduler_file) if scheduler_file else None,
+        lease_expiry=_seconds(lease_expiry, "--lease-expiry"),
+        lease_wait=_seconds(lease_wait, "--lease-wait") or 0.0,
+        dashboard=_dashboard(dashboard),
     )
     if cluster:
         from sweepctl.cluster import load_profile, make_cluster
 
         over = {"walltime": walltime, "queue": queue, "min_jobs": min_jobs, "max_jobs": max_jobs}
         prof = load_profile(cluster, profiles, over)
-        opts.cluster_factory = lambda: make_cluster(prof, st.root)
+        opts.cluster_factory = lambda: make_cluster(prof, st.root, opts.dashboard)
         opts.default_replica_seconds = prof.replica_seconds()
     elif _wants_tls(scheduler, scheduler_file):
         from sweepctl.cluster import make_security
@@ -400,6 +426,33 @@ def run(
         raise typer.Exit(130)
     if res.failed:
         raise typer.Exit(1)
+
+
+def _seconds(text: str | None, option: str) -> float | None:
+    from sweepctl.cluster import parse_duration
+
+    if text is None:
+        return None
+    secs = parse_duration(text, option)
+    if option == "--lease-expiry" and secs < 1:
+        raise UserError(f"{option} = {text!r}: must be at least 1s, e.g. {option} 10m")
+    return float(secs)
+
+
+def _dashboard(text: str | None) -> str | None:
+    """``--dashboard`` without a value, or with a port or host:port (loopback unless a
+    host is given)."""
+    if text is None:
+        return None
+    t = text.strip()
+    if t in ("", "on", "auto"):
+        return "127.0.0.1:0"
+    if t.isdigit():
+        return f"127.0.0.1:{t}"
+    host, _, port = t.rpartition(":")
+    if not host or not port.isdigit():
+        raise UserError(f"--dashboard = {text!r}: give a port (8787) or HOST:PORT (127.0.0.1:8787)")
+    return t
 
 
 def _wants_tls(scheduler: str | None, scheduler_file: Path | None) -> bool:

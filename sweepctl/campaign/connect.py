@@ -29,6 +29,9 @@ class RunOptions:
     cluster_factory: Callable[[], object] | None = None  # batch-system clusters
     security: object | None = None  # distributed.Security for TLS clusters
     default_replica_seconds: float | None = None  # from a batch profile's walltime
+    lease_expiry: float | None = None  # seconds; None: store.LEASE_EXPIRY_SECONDS
+    lease_wait: float = 0.0  # seconds to wait for another driver's lease to end or expire
+    dashboard: str | None = None  # "HOST:PORT" to serve the Dask dashboard on (opt-in)
 
 
 class Connection:
@@ -76,11 +79,14 @@ class Connection:
                 threads_per_worker=1,
                 processes=True,
                 host="127.0.0.1",
-                dashboard_address=None,
+                dashboard_address=options.dashboard,
                 silence_logs=logging.ERROR,
             )
             self.client = Client(self.cluster)
             self.kind = f"local cluster, {n} worker processes"
+        self.dashboard: str | None = None
+        if options.dashboard:
+            self.dashboard = dashboard_address(self.client)
 
     #: callback for watchdog reports (set by the driver)
     on_event: Callable[[dict], None] | None = None
@@ -136,6 +142,17 @@ class Connection:
         if self.cluster is not None:
             with contextlib.suppress(Exception):
                 self.cluster.close(timeout=20)
+
+
+def dashboard_address(client) -> str | None:
+    """The scheduler's HTTP address (its dashboard), from the scheduler itself."""
+    with contextlib.suppress(Exception):
+        info = client.scheduler_info()
+        port = info.get("services", {}).get("dashboard")
+        if port:
+            host = info["address"].split("://", 1)[-1].rsplit(":", 1)[0]
+            return f"http://{host}:{port}/"
+    return None
 
 
 async def _call(fn, *args):

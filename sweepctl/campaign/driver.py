@@ -19,6 +19,7 @@ import logging
 import math
 import os
 import signal
+import socket
 import threading
 import time
 from collections.abc import Callable
@@ -176,15 +177,22 @@ class Driver:
                     "choose an empty or new directory"
                 )
             store.root.mkdir(parents=True, exist_ok=True)
-        with store.locked():
+        with store.locked(expiry=self.options.lease_expiry, wait=self.options.lease_wait) as lease:
             removed = store.cleanup()
             preview = self.replay()
+            prev = lease.previous
             store.append_events(
                 [
                     {
                         "time": now_iso(),
                         "event": "run-start",
                         "pid": os.getpid(),
+                        "host": socket.gethostname(),
+                        "lease": lease.generation,
+                        "lease_expiry": lease.expiry,
+                        "took_over": None
+                        if prev is None or prev.released
+                        else {"pid": prev.pid, "host": prev.host, "generation": prev.generation},
                         "recipe": self.recipe.digest(),
                         "stored_rows": preview.stored_rows,
                         "removed_temporaries": [str(p) for p in removed],
@@ -227,18 +235,20 @@ class Driver:
                         self.say({"kind": "log", "message": "interrupted: saving what has arrived"})
                 finally:
                     self._closing = True  # from here on a signal is only noted
-                    self.flush(final=True)
-                    store.append_events(
-                        [
-                            {
-                                "time": now_iso(),
-                                "event": "interrupted" if self.interrupted else "run-end",
-                                "computed": self.computed,
-                            }
-                        ]
-                    )
-                    if self.conn is not None:
-                        self.conn.close()
+                    try:
+                        self.flush(final=True)
+                        store.append_events(
+                            [
+                                {
+                                    "time": now_iso(),
+                                    "event": "interrupted" if self.interrupted else "run-end",
+                                    "computed": self.computed,
+                                }
+                            ]
+                        )
+                    finally:
+                        if self.conn is not None:
+                            self.conn.close()
         return self._result(t0)
 
     def replay(self) -> RunPreview:
@@ -278,6 +288,10 @@ class Driver:
             ]
         )
         self.say({"kind": "log", "message": f"connected: {self.conn.kind}"})
+        if self.options.dashboard:
+            where = self.conn.dashboard or "not served (the scheduler has no HTTP server)"
+            self._event({"event": "dashboard", "address": self.conn.dashboard})
+            self.say({"kind": "log", "message": f"dashboard: {where}"})
         self.futures = as_completed(with_results=False)
 
     def submit(self, pp: PointProgress) -> None:

@@ -382,13 +382,14 @@ def make_security(store_root: Path):
     )
 
 
-def make_cluster(p: Profile, store_root: Path):
-    """Start a dask-jobqueue cluster for profile ``p`` (TLS, adaptive between min and max jobs)."""
+def make_cluster(p: Profile, store_root: Path, dashboard: str | None = None):
+    """Start a dask-jobqueue cluster for profile ``p`` (TLS, adaptive between min and max
+    jobs); ``dashboard``: ``HOST:PORT`` for the scheduler's dashboard (off by default)."""
     cls, _ = _classes(p.system)
     kw = _job_kwargs(p)
     kw["security"] = make_security(store_root)
     kw["protocol"] = "tls://"
-    sched = {"dashboard_address": None}
+    sched = {"dashboard_address": dashboard}
     if p.scheduler_host:
         sched["host"] = p.scheduler_host
     kw["scheduler_options"] = sched
