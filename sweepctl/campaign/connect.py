@@ -10,6 +10,7 @@ import contextlib
 import logging
 import os
 import threading
+import time
 import warnings
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -79,7 +80,8 @@ class Connection:
                 threads_per_worker=1,
                 processes=True,
                 host="127.0.0.1",
-                dashboard_address=options.dashboard,
+                # always served (health routes); without --dashboard on a free port
+                dashboard_address=options.dashboard or "127.0.0.1:0",
                 silence_logs=logging.ERROR,
             )
             self.client = Client(self.cluster)
@@ -94,19 +96,31 @@ class Connection:
     fatal: str | None = None
 
     def _watchdog(self) -> None:
-        """Every 10 s, forget batch jobs that ended behind dask-jobqueue's back.
+        """Poll the batch system (at most every ``sweepctl_poll_seconds``, one query for
+        all jobs) and forget jobs that ended behind dask-jobqueue's back.
 
         The batch layer attaches ``sweepctl_prune`` (a function of no arguments that
-        drops ended jobs and returns their ids) to the clusters it makes; the driver
-        only calls it, so this layer never imports the batch layer.
+        drops ended jobs and returns their ids, or ``None`` when the batch system did
+        not answer) to the clusters it makes; the driver only calls it, so this layer
+        never imports the batch layer.
         """
         prune = getattr(self.cluster, "sweepctl_prune", None)
+        every = float(getattr(self.cluster, "sweepctl_poll_seconds", 30.0))
         ever_connected = False
         ended_unconnected = 0
-        while prune is not None and not self._watch.wait(10.0):
+        unknown_since = None
+        while prune is not None and not self._watch.wait(every):
             with contextlib.suppress(Exception):
                 ever_connected |= bool(self.client.scheduler_info().get("workers"))
                 dropped = self.cluster.sync(_call, prune)
+                if dropped is None:  # no answer: the jobs are unknown, not dead
+                    if unknown_since is None and self.on_event:
+                        self.on_event({"event": "jobs-unknown", "jobs": self._job_ids()})
+                    unknown_since = unknown_since or time.monotonic()
+                    continue
+                if unknown_since is not None and self.on_event:
+                    self.on_event({"event": "jobs-known-again"})
+                unknown_since = None
                 if dropped and self.on_event:
                     self.on_event({"event": "jobs-ended", "jobs": dropped})
                 if not ever_connected:
@@ -122,6 +136,13 @@ class Connection:
 
                     _thread.interrupt_main()
                     return
+
+    def _job_ids(self) -> list[str]:
+        return [
+            str(j.job_id)
+            for j in list(getattr(self.cluster, "workers", {}).values())
+            if getattr(j, "job_id", None)
+        ]
 
     def worker_pids(self) -> dict[str, list[int]]:
         """``{address: [pid, parent pid]}`` of every worker (for the events log)."""

@@ -33,6 +33,7 @@ from importlib import resources
 from pathlib import Path
 from typing import Any
 
+from sweepctl.cluster.watch import WATCHDOG_SECONDS, prune_dead_jobs
 from sweepctl.errors import SweepctlError
 
 __all__ = [
@@ -389,7 +390,9 @@ def make_cluster(p: Profile, store_root: Path, dashboard: str | None = None):
     kw = _job_kwargs(p)
     kw["security"] = make_security(store_root)
     kw["protocol"] = "tls://"
-    sched = {"dashboard_address": dashboard}
+    # The scheduler always serves HTTP (health routes, the dashboard if bokeh is
+    # installed); without --dashboard keep it on a free loopback port, not 8787.
+    sched = {"dashboard_address": dashboard or "127.0.0.1:0"}
     if p.scheduler_host:
         sched["host"] = p.scheduler_host
     kw["scheduler_options"] = sched
@@ -397,59 +400,6 @@ def make_cluster(p: Profile, store_root: Path, dashboard: str | None = None):
     cluster = cls(**kw)
     # for the driver's watchdog, which must not import this layer
     cluster.sweepctl_prune = lambda: prune_dead_jobs(cluster, p.system)
+    cluster.sweepctl_poll_seconds = WATCHDOG_SECONDS
     cluster.adapt(minimum_jobs=p.min_jobs, maximum_jobs=p.max_jobs)
     return cluster
-
-
-# -------------------------------------------------------------------------- watchdog
-
-_STATUS = {
-    "slurm": lambda j: ["squeue", "-h", "-j", j, "-o", "%T"],
-    "pbs": lambda j: ["qstat", j],
-    "sge": lambda j: ["qstat", "-j", j],
-    "lsf": lambda j: ["bjobs", "-noheader", j],
-}
-_ENDED = (
-    "COMPLETED",
-    "CANCELLED",
-    "FAILED",
-    "TIMEOUT",
-    "PREEMPTED",
-    "NODE_FAIL",
-    "BOOT_FAIL",
-    "OUT_OF_MEMORY",
-    "DEADLINE",
-    "DONE",
-    "EXIT",
-)
-
-
-def job_alive(system: str, job_id: str) -> bool:
-    """Whether the batch system still knows the job (queued or running)."""
-    try:
-        proc = subprocess.run(
-            _STATUS[system](str(job_id)), capture_output=True, text=True, timeout=30
-        )
-    except (OSError, subprocess.SubprocessError):
-        return True  # cannot tell: keep it
-    out = proc.stdout.strip()
-    if proc.returncode != 0 or not out:
-        return False
-    return not any(state in out.split() for state in _ENDED)
-
-
-def prune_dead_jobs(cluster, system: str) -> list[str]:
-    """Forget worker jobs the batch system has ended (scancel, walltime, preemption).
-
-    dask-jobqueue does not notice jobs that end behind its back, so adaptive scaling
-    would keep counting them and never ask for replacements; forgetting them lets it
-    submit new jobs. Returns the job ids dropped.
-    """
-    dropped = []
-    for name, job in list(getattr(cluster, "workers", {}).items()):
-        jid = getattr(job, "job_id", None)
-        if jid and not job_alive(system, jid):
-            cluster.worker_spec.pop(name, None)
-            cluster.workers.pop(name, None)
-            dropped.append(str(jid))
-    return dropped

@@ -12,6 +12,7 @@ import pandas as pd
 import pyarrow.parquet as pq
 import pytest
 
+from sweepctl.cluster.watch import job_end_state, list_jobs
 from tests.campaign.helpers import (
     assert_row_recomputes,
     cli,
@@ -166,12 +167,10 @@ def test_worker_job_hits_walltime_mid_replica(tmp_path):
     row = pq.read_table(store / "replicas").to_pylist()[0]
     assert row["resumed_at_layer"] > 0
     assert_row_recomputes(row)  # bit-identical to an uninterrupted replica
-    acct = (
-        Path("/tmp/slurm/log/jobcomp.log").read_text()
-        if Path("/tmp/slurm/log/jobcomp.log").exists()
-        else ""
-    )
-    assert "TIMEOUT" in acct
+    # how the worker jobs ended, asked of Slurm (sacct, the controller, or the
+    # job-completion log where `scontrol show config` puts it)
+    ids = {p.stem.rsplit("-", 1)[-1] for p in (store / "batch-logs").glob("*-*.err")}
+    assert "TIMEOUT" in {job_end_state(j) for j in ids}, ids
 
 
 def test_in_allocation_script_killed_by_walltime_then_resubmitted(tmp_path):
@@ -233,3 +232,21 @@ def test_in_allocation_script_killed_by_walltime_then_resubmitted(tmp_path):
     assert state(second) in ("COMPLETED", "GONE"), log
     pd.testing.assert_frame_equal(merged(store), merged(ref), check_exact=True)
     assert cli("audit", store).returncode == 0
+
+
+def test_one_listing_sees_live_jobs_and_slurm_tells_how_they_ended():
+    def sub(cmd: str) -> str:
+        out = subprocess.run(
+            ["sbatch", "--parsable", "-J", "sweepctl-probe", "-o", "/dev/null", "--wrap", cmd],
+            capture_output=True,
+            text=True,
+            check=True,
+        )
+        return out.stdout.strip().split(";")[0]
+
+    a, b = sub("sleep 60"), sub("true")
+    wait_until(lambda: job_end_state(b) == "COMPLETED", 60, "the short job to complete")
+    listing = list_jobs("slurm")
+    assert listing is not None and a in listing and b not in listing
+    subprocess.run(["scancel", a], check=True)
+    wait_until(lambda: job_end_state(a) == "CANCELLED", 60, "the cancelled job's end state")
