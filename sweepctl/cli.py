@@ -550,9 +550,49 @@ def status(
         console.print(f"({len(rows) - len(shown)} more points not shown; use --json)")
     console.print(
         f"done {totals['done']}, capped {totals['capped']}, running {totals['running']}, "
-        f"pending {totals['pending']}; {totals['replicas']} replicas stored; remaining "
-        f"{_hours(totals['remaining_cpu_hours'])} CPU for the current rounds"
+        f"partial {totals['partial']}, pending {totals['pending']}; {totals['replicas']} "
+        f"replicas stored; remaining {_hours(totals['remaining_cpu_hours'])} CPU for the "
+        "current rounds",
+        highlight=False,
     )
+    for line in _status_lines(totals):
+        console.print(line, highlight=False, soft_wrap=True)
+
+
+def _status_lines(totals: dict) -> list[str]:
+    d = totals["driver"]
+    who = f"pid {d.get('pid')} on {d.get('host')}"
+    if d["state"] == "running":
+        drv = (
+            f"driver: running, {who}, last heartbeat {d['last_heartbeat']} (lease expires in "
+            f"{d['expires_in_seconds']:.0f} s unless renewed)"
+        )
+    elif d["state"] == "stopped":
+        drv = f"driver: none (the last one, {who}, stopped at {d['last_heartbeat']})"
+    elif d["state"] == "lost":
+        drv = (
+            f"driver: none — the last one, {who}, stopped renewing its lease at "
+            f"{d['last_heartbeat']} without a clean-up; the next run takes over"
+        )
+    else:
+        drv = "driver: none has run yet"
+    lines = [drv]
+    ev = totals.get("last_event")
+    if ev:
+        what = ev.get("event")
+        extra = f" (point {ev['point']}, replica {ev['replica']})" if "replica" in ev else ""
+        lines.append(f"last event: {what}{extra} at {ev.get('time')}")
+    eta = totals.get("eta_seconds")
+    if totals["done"] + totals["capped"] < totals["points"]:
+        if eta is None:
+            lines.append(f"ETA: unknown ({totals.get('throughput_basis')})")
+        else:
+            cond = "" if d["state"] == "running" else ", once a driver runs again"
+            lines.append(
+                f"ETA: {_duration(eta)} of wall clock for the current rounds at the "
+                f"throughput observed over {totals['throughput_basis']}{cond}"
+            )
+    return lines
 
 
 @app.command()

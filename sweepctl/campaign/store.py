@@ -784,6 +784,40 @@ class Store:
             fh.flush()
             os.fsync(fh.fileno())
 
+    def tail_events(self, max_bytes: int = 1 << 20) -> list[dict]:
+        """The events in the last ``max_bytes`` of the log (complete lines only)."""
+        try:
+            with open(self.events_file, "rb") as fh:
+                size = fh.seek(0, os.SEEK_END)
+                fh.seek(max(0, size - max_bytes))
+                data = fh.read()
+        except OSError:
+            return []
+        lines = data.split(b"\n")
+        if len(data) < size:
+            lines = lines[1:]  # the first line was cut
+        out = []
+        for line in lines:
+            with contextlib.suppress(ValueError):
+                if line.strip():
+                    out.append(json.loads(line))
+        return out
+
+    def last_event(self) -> dict | None:
+        ev = self.tail_events(1 << 16)
+        return ev[-1] if ev else None
+
+    def last_event_time(self, kind: str):
+        """When the last event of ``kind`` in the log's last megabyte happened (a pandas
+        UTC timestamp), or ``None``."""
+        import pandas as pd
+
+        for e in reversed(self.tail_events()):
+            if e.get("event") == kind and e.get("time"):
+                with contextlib.suppress(ValueError, TypeError):
+                    return pd.Timestamp(e["time"]).tz_convert("UTC")
+        return None
+
     def read_events(self) -> list[dict]:
         if not self.events_file.exists():
             return []
