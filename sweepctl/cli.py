@@ -369,6 +369,14 @@ def run(
         ),
     ] = None,
     dashboard: DashboardOpt = None,
+    compact_at: Annotated[
+        int,
+        typer.Option(
+            "--compact-at",
+            min=2,
+            help="Compact the store's part files once this many small ones exist.",
+        ),
+    ] = 64,
 ) -> None:
     """Run or continue a campaign until every point reaches its precision (or cap)."""
     from sweepctl.bench import cost_model
@@ -394,6 +402,7 @@ def run(
         lease_expiry=_seconds(lease_expiry, "--lease-expiry"),
         lease_wait=_seconds(lease_wait, "--lease-wait") or 0.0,
         dashboard=_dashboard(dashboard),
+        compact_at=compact_at,
     )
     if cluster:
         from sweepctl.cluster import load_profile, make_cluster
@@ -593,6 +602,33 @@ def _status_lines(totals: dict) -> list[str]:
                 f"throughput observed over {totals['throughput_basis']}{cond}"
             )
     return lines
+
+
+@app.command()
+def compact(
+    store: StoreArg,
+    lease_wait: Annotated[
+        str | None,
+        typer.Option("--lease-wait", help="Wait this long for a running driver's lease."),
+    ] = None,
+) -> None:
+    """Merge the store's small part files into large ones; remove orphaned checkpoints.
+
+    Takes the store's lease (never alongside a driver); safe to kill at any moment.
+    """
+    from sweepctl.campaign.store import Store
+    from sweepctl.campaign.summary import compact_store
+
+    st = Store(store)
+    st.require()
+    res = compact_store(st, wait=_seconds(lease_wait, "--lease-wait") or 0.0)
+    console.print(
+        f"{res['files_before']} part files -> {res['files_after']} "
+        f"({res['files_read']} small ones merged into {res['files_written']}); "
+        f"{res['removed_checkpoints']} checkpoints of stored replicas removed",
+        highlight=False,
+        soft_wrap=True,
+    )
 
 
 @app.command()

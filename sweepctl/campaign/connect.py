@@ -33,6 +33,7 @@ class RunOptions:
     lease_expiry: float | None = None  # seconds; None: store.LEASE_EXPIRY_SECONDS
     lease_wait: float = 0.0  # seconds to wait for another driver's lease to end or expire
     dashboard: str | None = None  # "HOST:PORT" to serve the Dask dashboard on (opt-in)
+    compact_at: int = 64  # compact part files once this many small ones exist
 
 
 class Connection:

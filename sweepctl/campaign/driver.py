@@ -180,6 +180,10 @@ class Driver:
         with store.locked(expiry=self.options.lease_expiry, wait=self.options.lease_wait) as lease:
             removed = store.cleanup()
             preview = self.replay()
+            orphans = store.remove_stored_checkpoints(
+                {(pp.point.short, r) for pp in self.progress.values() for r in pp.done}
+            )
+            compacted = self._compact(at_least=self.options.compact_at)
             prev = lease.previous
             store.append_events(
                 [
@@ -196,6 +200,8 @@ class Driver:
                         "recipe": self.recipe.digest(),
                         "stored_rows": preview.stored_rows,
                         "removed_temporaries": [str(p) for p in removed],
+                        "removed_checkpoints": orphans,
+                        "compacted": compacted,
                         "preview": preview.to_json(),
                     }
                 ]
@@ -413,12 +419,17 @@ class Driver:
                     raise
                 if os.environ.get("SWEEPCTL_FAULT") == "signal-in-flush" and not final:
                     os.kill(os.getpid(), signal.SIGTERM)  # fault-injection hook for tests
+                if os.environ.get("SWEEPCTL_FAULT") == "kill-after-rows":
+                    os.kill(os.getpid(), signal.SIGKILL)  # rows stored, checkpoints not removed
                 for p in cks:
                     with contextlib.suppress(OSError):
                         p.unlink()
             with self._events_lock:
                 batch, self._events = self._events, []
             self.store.append_events(batch)
+            done = self._compact(at_least=self.options.compact_at)
+            if done:
+                self.store.append_events([{"time": now_iso(), "event": "compacted", **done}])
             self._last_flush = time.perf_counter()
         finally:
             self._in_flush = False
@@ -427,6 +438,13 @@ class Driver:
             raise KeyboardInterrupt
 
     # -- helpers ------------------------------------------------------------------------
+    def _compact(self, at_least: int) -> dict | None:
+        """Compact the small part files once there are ``at_least`` of them."""
+        if len(self.store.small_part_files()) < max(2, at_least):
+            return None
+        read, written = self.store.compact()
+        return {"files_read": read, "files_written": written} if read else None
+
     @contextlib.contextmanager
     def _signals(self):
         """TERM (batch systems send it before KILL) and INT stop the run, but not mid-flush."""

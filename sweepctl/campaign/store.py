@@ -223,6 +223,22 @@ def code_version() -> dict[str, str]:
     }
 
 
+#: Part files smaller than this are compacted (bytes) ...
+COMPACT_SMALL_BYTES = 16 << 20
+#: ... into files of about this size.
+COMPACT_TARGET_BYTES = 128 << 20
+#: The driver compacts once this many small part files have accumulated
+#: (``sweepctl run --compact-at``): at one flush per 5 s, about every 5 minutes.
+COMPACT_AT = 64
+
+
+def _size(p: Path) -> int:
+    try:
+        return p.stat().st_size
+    except OSError:
+        return 0
+
+
 def _fsync_dir(path: Path) -> None:
     with contextlib.suppress(OSError):
         fd = os.open(path, os.O_RDONLY)
@@ -665,23 +681,131 @@ class Store:
             self._lease.check()
         self._wrote = True
 
-    # -- repairs after a kill (lock held) ------------------------------------------------
+    # -- repairs after a kill (lease held) -----------------------------------------------
     def cleanup(self) -> list[Path]:
-        """Remove temporaries left by a killed writer; mend a torn last event line."""
+        """Remove temporaries left by a killed writer, finish an interrupted compaction,
+        mend a torn last event line."""
         removed = []
         for d in (self.root, self.replicas_dir, self.checkpoints_dir, self.merged_dir):
             if d.is_dir():
-                for p in d.rglob(".*.tmp-*"):
+                found = d.glob(".*.tmp-*") if d == self.root else d.rglob(".*.tmp-*")
+                for p in found:
                     with contextlib.suppress(OSError):
                         p.unlink()
                         removed.append(p)
+        removed += self._finish_compactions()
         if self.events_file.exists():
-            data = self.events_file.read_bytes()
-            if data and not data.endswith(b"\n"):
-                cut = data.rfind(b"\n") + 1
-                with open(self.events_file, "r+b") as fh:
-                    fh.truncate(cut)
+            with open(self.events_file, "r+b") as fh:
+                size = fh.seek(0, os.SEEK_END)
+                if size:
+                    fh.seek(max(0, size - (1 << 20)))
+                    tail = fh.read()
+                    if not tail.endswith(b"\n"):
+                        cut = tail.rfind(b"\n")
+                        fh.truncate(size - len(tail) + cut + 1 if cut >= 0 else 0)
         return removed
+
+    # -- compaction -------------------------------------------------------------------
+    def small_part_files(self) -> list[Path]:
+        return [p for p in self.part_files() if _size(p) < COMPACT_SMALL_BYTES]
+
+    def compact(self, target_bytes: int = COMPACT_TARGET_BYTES) -> tuple[int, int]:
+        """Rewrite the small part files as few large ones; returns (files read, written).
+
+        Each output holds its inputs' rows unchanged (same pinned schema, values copied
+        bit for bit, duplicates kept for the one reader to collapse) and names them in
+        its metadata. Steps: write a temporary, ``os.replace`` it into place, delete the
+        inputs. A kill before the replace leaves a temporary (removed later); a kill
+        after it leaves inputs whose rows are also in the output, which the reader
+        counts once and the next :meth:`cleanup` deletes.
+        """
+        self._finish_compactions()
+        groups: list[list[Path]] = [[]]
+        size = 0
+        for p in self.small_part_files():
+            if groups[-1] and size + _size(p) > target_bytes:
+                groups.append([])
+                size = 0
+            groups[-1].append(p)
+            size += _size(p)
+        read = written = 0
+        for group in groups:
+            if len(group) < 2:
+                continue
+            self._compact_group(group)
+            read += len(group)
+            written += 1
+        return read, written
+
+    def _compact_group(self, group: list[Path]) -> Path:
+        fault = os.environ.get("SWEEPCTL_FAULT", "")
+        tables, meta = [], dict(REPLICA_SCHEMA.metadata or {})
+        for p in group:
+            tables.append(_read_part(p, None, REPLICA_SCHEMA).replace_schema_metadata(None))
+            camp = (pq.read_schema(p).metadata or {}).get(b"sweepctl.campaign")
+            if camp and b"sweepctl.campaign" not in meta:
+                meta[b"sweepctl.campaign"] = camp
+        meta[b"sweepctl.compacted_from"] = json.dumps([p.name for p in group]).encode()
+        table = pa.concat_tables(tables).replace_schema_metadata(meta)
+        # sorts where its first input did, so the reader's file order barely changes
+        stem = group[0].stem.split("~", 1)[0]
+        final = self.replicas_dir / f"{stem}~c{uuid.uuid4().hex[:10]}.parquet"
+        tmp = self.replicas_dir / f".{final.name}.tmp-{uuid.uuid4().hex[:8]}"
+        pq.write_table(table, tmp, compression="zstd")
+        with open(tmp, "rb") as fh:
+            os.fsync(fh.fileno())
+        if fault == "kill-compact-written":
+            os.kill(os.getpid(), signal.SIGKILL)  # fault-injection hook for tests
+        try:
+            self._guard()
+        except BaseException:
+            tmp.unlink(missing_ok=True)
+            raise
+        os.replace(tmp, final)
+        _fsync_dir(self.replicas_dir)
+        if fault == "kill-compact-replaced":
+            os.kill(os.getpid(), signal.SIGKILL)
+        for i, p in enumerate(group):
+            p.unlink(missing_ok=True)
+            if fault == "kill-compact-deleting" and i == 0:
+                os.kill(os.getpid(), signal.SIGKILL)
+        _fsync_dir(self.replicas_dir)
+        return final
+
+    def _finish_compactions(self) -> list[Path]:
+        """Delete inputs of completed compactions that a kill left behind."""
+        removed = []
+        names = {p.name for p in self.part_files()}
+        for p in self.part_files():
+            if "~c" not in p.name:
+                continue
+            try:
+                meta = pq.read_schema(p).metadata or {}
+                inputs = json.loads(meta.get(b"sweepctl.compacted_from", b"[]"))
+            except (OSError, ValueError, pa.ArrowException):
+                continue
+            for name in inputs:
+                if name in names and name != p.name:
+                    self._guard()
+                    with contextlib.suppress(OSError):
+                        (self.replicas_dir / name).unlink()
+                        removed.append(self.replicas_dir / name)
+        return removed
+
+    def remove_stored_checkpoints(self, stored: set[tuple[str, int]]) -> int:
+        """Delete checkpoints of replicas whose rows are stored (``(point short name,
+        replica)``): left behind when a driver died between the two steps."""
+        n = 0
+        if not self.checkpoints_dir.is_dir():
+            return 0
+        for p in self.checkpoints_dir.glob("*/r*.ckpt"):
+            with contextlib.suppress(ValueError):
+                if (p.parent.name, int(p.stem[1:])) in stored:
+                    self._guard()
+                    with contextlib.suppress(OSError):
+                        p.unlink()
+                        n += 1
+        return n
 
     # -- replica rows ---------------------------------------------------------------
     def part_files(self) -> list[Path]:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from datetime import UTC, datetime
 
 import numpy as np
 import pandas as pd
@@ -15,6 +16,7 @@ from sweepctl.campaign.store import Store
 
 __all__ = [
     "MERGED_COLUMNS",
+    "compact_store",
     "driver_state",
     "merge_table",
     "observed_eta",
@@ -232,3 +234,43 @@ def status_rows(store: Store, cost: CostModel | None) -> tuple[list[dict], dict]
         **observed_eta(store, progress, frozen, cost),
     }
     return out, totals
+
+
+def compact_store(store: Store, wait: float = 0.0) -> dict:
+    """``sweepctl compact``: under the lease, finish interrupted compactions, merge the
+    small part files, and remove checkpoints of replicas whose rows are stored."""
+    _, recipe, _ = store_recipe(store)
+    before = len(store.part_files())
+    with store.locked(wait=wait):
+        store.cleanup()
+        rows = store.read_replicas(columns=["point_key", "replica"])
+        short = {p.key: p.short for p in recipe.points()}
+        stored = {
+            (short[k], int(r))
+            for k, r in zip(
+                rows.column("point_key").to_pylist(),
+                rows.column("replica").to_pylist(),
+                strict=True,
+            )
+            if k in short
+        }
+        removed = store.remove_stored_checkpoints(stored)
+        read, written = store.compact()
+        store.append_events(
+            [
+                {
+                    "time": datetime.now(UTC).isoformat(timespec="milliseconds"),
+                    "event": "compacted",
+                    "files_read": read,
+                    "files_written": written,
+                    "removed_checkpoints": removed,
+                }
+            ]
+        )
+    return {
+        "files_before": before,
+        "files_after": len(store.part_files()),
+        "files_read": read,
+        "files_written": written,
+        "removed_checkpoints": removed,
+    }
