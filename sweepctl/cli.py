@@ -491,6 +491,122 @@ def cluster_script(
     print(job_script(p))
 
 
+@cluster_app.command("list")
+def cluster_list(
+    profiles: Annotated[Path | None, typer.Option("--profiles", help="Profile file.")] = None,
+) -> None:
+    """List the batch profiles (the user's file, then the bare system names)."""
+    from sweepctl.cluster.batch import list_profiles
+
+    path, rows = list_profiles(profiles)
+    t = Table(title=f"profiles ({path or 'no profile file; packaged defaults only'})")
+    for c in ("name", "system", "walltime", "cores", "max jobs", "from"):
+        t.add_column(c)
+    for r in rows:
+        t.add_row(r.name, r.system, r.walltime, str(r.cores), str(r.max_jobs), r.source)
+    console.print(t)
+
+
+@cluster_app.command("show")
+def cluster_show(
+    name: Annotated[str, typer.Argument(help="Profile name (or slurm/pbs/sge/lsf).")],
+    profiles: Annotated[Path | None, typer.Option("--profiles", help="Profile file.")] = None,
+) -> None:
+    """Print a profile's resolved settings (packaged defaults < file < command line)."""
+    from sweepctl.cluster.batch import describe_profile, load_profile
+
+    for key, value in describe_profile(load_profile(name, profiles)):
+        console.print(f"{key:<18} {value}", highlight=False, soft_wrap=True)
+
+
+@cluster_app.command("submit")
+def cluster_submit(
+    recipe: RecipeArg,
+    store: Annotated[Path, typer.Option("--store", help="Campaign store directory.")],
+    cluster: Annotated[str, typer.Option("--cluster", help="Batch profile (or slurm/pbs/…).")],
+    profiles: Annotated[Path | None, typer.Option("--profiles", help="Profile file.")] = None,
+    walltime: Annotated[str | None, typer.Option("--walltime", help="Per allocation.")] = None,
+    queue: Annotated[str | None, typer.Option("--queue")] = None,
+    stop_margin: Annotated[
+        str | None,
+        typer.Option("--stop-margin", help="Stop this long before the walltime (default 5m)."),
+    ] = None,
+    lease_expiry: Annotated[str | None, typer.Option("--lease-expiry")] = None,
+) -> None:
+    """Submit a self-continuing campaign: each allocation runs scheduler, workers and
+    driver, stops shortly before its walltime and submits its successor, until done."""
+    from sweepctl.cluster import load_profile
+    from sweepctl.cluster.chain import submit_chain
+
+    rec = load_recipe_or_fail(recipe)
+    _check_against_store(rec, store, recipe)
+    prof = load_profile(cluster, profiles, {"walltime": walltime, "queue": queue})
+    jid = submit_chain(recipe, store, prof, stop_margin, _seconds(lease_expiry, "--lease-expiry"))
+    console.print(
+        f"submitted job {jid} ({prof.system}, walltime {prof.walltime}); the campaign now "
+        f"continues itself until complete.\n  watch: sweepctl status {store}\n  stop:  "
+        f"sweepctl cluster stop {store}",
+        highlight=False,
+        soft_wrap=True,
+    )
+
+
+def _check_against_store(rec, store: Path, source: Path) -> None:
+    """Refuse a recipe change the store would refuse, before anything is queued."""
+    from sweepctl.campaign.plan import Frozen, check_compatible
+    from sweepctl.campaign.store import Store
+
+    st = Store(store)
+    if st.exists():
+        check_compatible(rec, Frozen.from_json(st.read_campaign()["frozen"]), str(source))
+
+
+@cluster_app.command("stop")
+def cluster_stop(
+    store: StoreArg,
+    let_finish: Annotated[
+        bool,
+        typer.Option(
+            "--let-finish", help="Let the running link work until its stop margin, then end."
+        ),
+    ] = False,
+) -> None:
+    """Stop a self-continuing campaign: no link continues it; queued and running links
+    are cancelled (the running driver stores what it has first)."""
+    from sweepctl.cluster.chain import stop_chain
+
+    res = stop_chain(store, cancel=not let_finish)
+    jobs = ", ".join(res["cancelled"]) or "none"
+    console.print(
+        f"stopped: no link will continue the campaign; cancelled jobs: {jobs}. "
+        f"Continue later with `sweepctl cluster submit RECIPE --store {store} --cluster NAME`.",
+        highlight=False,
+        soft_wrap=True,
+    )
+
+
+@cluster_app.command("link", hidden=True)
+def cluster_link(
+    store: Annotated[Path, typer.Option("--store")],
+    calibration: CalibrationOpt = None,
+) -> None:
+    """One link of a self-continuing campaign (run by the job script)."""
+    from sweepctl.bench import cost_model
+    from sweepctl.campaign.recipe import load_recipe
+    from sweepctl.cluster.chain import chain_dir, run_link
+
+    rec = load_recipe(chain_dir(store) / "recipe.toml")
+    needs = rec.replica_layers is None or rec.max_cpu_hours is not None
+    cost, _ = cost_model(list(rec.widths), calibration, measure=needs)
+    display = _RunDisplay()
+    try:
+        outcome, code = run_link(store, cost, display)
+    finally:
+        display.close()
+    console.print(f"link ended: {outcome}")
+    raise typer.Exit(code)
+
+
 @app.command()
 def merge(
     store: StoreArg,

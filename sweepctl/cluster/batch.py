@@ -28,7 +28,7 @@ import os
 import re
 import subprocess
 import tomllib
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from importlib import resources
 from pathlib import Path
 from typing import Any
@@ -68,6 +68,7 @@ _KEYS: dict[str, type | tuple] = {
     "local_directory": str,
     "scheduler_host": str,
     "replica_fraction": float,
+    "stop_margin": str,
 }
 
 
@@ -117,6 +118,7 @@ class Profile:
     local_directory: str | None = None
     scheduler_host: str | None = None
     replica_fraction: float = 0.1
+    stop_margin: str | None = None  # self-continuing allocations stop this long before
 
     @property
     def walltime_seconds(self) -> int:
@@ -176,7 +178,7 @@ def _check(src: str, name: str, body: dict) -> dict:
             raise ProfileError(f"{where} = {v!r}: must be at least 0")
         if k == "system" and v not in SYSTEMS:
             raise ProfileError(f"{where} = {v!r}: must be one of {', '.join(SYSTEMS)}")
-        if k in ("walltime", "lifetime_margin", "lifetime_stagger") and not (
+        if k in ("walltime", "lifetime_margin", "lifetime_stagger", "stop_margin") and not (
             k == "lifetime_margin" and v == "off"
         ):
             parse_duration(v, where)
@@ -230,6 +232,46 @@ def load_profile(
     if merged.get("min_jobs", 0) > merged.get("max_jobs", 1):
         raise ProfileError(f"{src}: profiles.{name}.min_jobs exceeds max_jobs; lower min_jobs")
     return Profile(name=name, **{k: v for k, v in merged.items() if k in _KEYS})
+
+
+@dataclass
+class ProfileRow:
+    name: str
+    system: str
+    walltime: str
+    cores: int
+    max_jobs: int
+    source: str
+
+
+def list_profiles(profiles_file: str | Path | None = None) -> tuple[Path | None, list[ProfileRow]]:
+    """Every profile of the user's file (resolved), then the bare system names."""
+    path = user_profiles_path(profiles_file)
+    names: list[str] = []
+    if path is not None:
+        try:
+            names = list(tomllib.loads(path.read_text()).get("profiles", {}))
+        except FileNotFoundError:
+            raise ProfileError(
+                f"{path}: no such profile file; see deploy/clusters.example.toml"
+            ) from None
+        except tomllib.TOMLDecodeError as exc:
+            raise ProfileError(f"{path}: {exc}; fix the TOML syntax") from None
+    rows = []
+    for n in [*names, *[s for s in SYSTEMS if s not in names]]:
+        p = load_profile(n, path)
+        src = str(path) if n in names else "packaged defaults"
+        rows.append(ProfileRow(n, p.system, p.walltime, p.cores, p.max_jobs, src))
+    return path, rows
+
+
+def describe_profile(p: Profile) -> list[tuple[str, str]]:
+    """A resolved profile as (setting, value) lines, with the derived worker lifetime."""
+    out = [(f.name, repr(getattr(p, f.name))) for f in fields(p)]
+    life = p.lifetime_seconds
+    out.append(("worker lifetime", "until the walltime" if life is None else f"{life} s"))
+    out.append(("replica seconds", f"{p.replica_seconds():.0f} (suggested replica duration)"))
+    return out
 
 
 def _job_kwargs(p: Profile) -> dict:

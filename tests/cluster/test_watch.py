@@ -6,45 +6,13 @@ system made of small shell scripts, so the test can make the query fail on purpo
 
 from __future__ import annotations
 
-import os
 import time
-from pathlib import Path
 
 import pytest
 
 from sweepctl.cluster.watch import job_states, list_jobs, parse_listing, prune_dead_jobs
 from tests.campaign.helpers import wait_until
-
-FAKE = {
-    # a submission counter; prints what sbatch prints
-    "sbatch": 'n=$(($(cat "$D/n" 2>/dev/null || echo 0) + 1)); echo $n > "$D/n"\n'
-    'echo "submit $n" >> "$D/log"; echo "Submitted batch job $n"\n',
-    "scancel": 'echo "cancel $*" >> "$D/log"\n',
-    # the listing: fails, hangs, or prints $D/listing, as $D/mode says
-    "squeue": 'echo "query $*" >> "$D/log"\nmode=$(cat "$D/mode")\n'
-    'case $mode in fail) echo "slurm_load_jobs error: Socket timed out" >&2; exit 1;;\n'
-    'hang) sleep 30;; *) cat "$D/listing";; esac\n',
-}
-
-
-@pytest.fixture
-def fake_slurm(tmp_path, monkeypatch):
-    d = tmp_path / "batch"
-    b = d / "bin"
-    b.mkdir(parents=True)
-    for name, body in FAKE.items():
-        p = b / name
-        p.write_text(f"#!/bin/bash\nD={d}\n{body}")
-        p.chmod(0o755)
-    (d / "mode").write_text("list")
-    (d / "listing").write_text("")
-    monkeypatch.setenv("PATH", f"{b}:{os.environ['PATH']}")
-    return d
-
-
-def log_lines(d: Path, word: str) -> list[str]:
-    f = d / "log"
-    return [ln for ln in f.read_text().splitlines() if ln.startswith(word)] if f.exists() else []
+from tests.cluster.conftest import log_lines
 
 
 def test_failed_or_hung_query_is_unknown_and_never_exceeds_max_jobs(fake_slurm, tmp_path):

@@ -2,16 +2,15 @@
 
 from __future__ import annotations
 
-import os
 import subprocess
 import sys
-import time
 from pathlib import Path
 
 import pandas as pd
 import pyarrow.parquet as pq
 import pytest
 
+from sweepctl.cluster.chain import read_links
 from sweepctl.cluster.watch import job_end_state, list_jobs
 from tests.campaign.helpers import (
     assert_row_recomputes,
@@ -40,11 +39,11 @@ MEDIUM = {
     "replica": {"layers": 46_000, "checkpoint_seconds": 1},
 }
 
-# long enough that a one-minute allocation cannot finish it
-ALLOC = {
+# about three links of 15 s work on two workers
+CHAIN = {
     "axes": {"widths": [2, 3, 4]},
-    "precision": {"target": 0.0004, "max_layers": 6_160_000},
-    "replica": {"layers": 92_000, "checkpoint_seconds": 2},
+    "precision": {"target": 0.0007, "max_layers": 6_160_000},
+    "replica": {"layers": 46_000, "checkpoint_seconds": 1},
 }
 
 
@@ -173,65 +172,41 @@ def test_worker_job_hits_walltime_mid_replica(tmp_path):
     assert "TIMEOUT" in {job_end_state(j) for j in ids}, ids
 
 
-def test_in_allocation_script_killed_by_walltime_then_resubmitted(tmp_path):
-    recipe = write_recipe(tmp_path / "recipe.toml", ALLOC)
+def test_self_continuing_allocations_complete_a_campaign_unattended(tmp_path):
+    recipe = write_recipe(tmp_path / "recipe.toml", CHAIN)
     ref = tmp_path / "reference"
-    assert cli("run", recipe, "--store", ref, "--workers", "2", timeout=1200).returncode == 0
+    assert cli("run", recipe, "--store", ref, "--workers", "2", timeout=900).returncode == 0
     store = tmp_path / "store"
-    env = {
-        **os.environ,
-        "RECIPE": str(recipe),
-        "STORE": str(store),
-        "PATH": f"{PY_BIN}:{os.environ['PATH']}",
-    }
-    script = ROOT / "deploy" / "slurm" / "campaign.sbatch"
-
-    def submit(minutes: str) -> str:
-        out = subprocess.run(
-            [
-                "sbatch",
-                "--parsable",
-                f"--time={minutes}",
-                f"--chdir={ROOT}",
-                f"--output={tmp_path}/job-%j.out",
-                str(script),
-            ],
-            capture_output=True,
-            text=True,
-            env=env,
-            check=True,
-        )
-        return out.stdout.strip().split(";")[0]
-
-    def state(job: str) -> str:
-        out = subprocess.run(["scontrol", "show", "job", job], capture_output=True, text=True)
-        for tok in out.stdout.split():
-            if tok.startswith("JobState="):
-                return tok.split("=", 1)[1]
-        return "GONE"
-
-    first = submit("00:01:00")
-    wait_until(
-        lambda: state(first) in ("TIMEOUT", "COMPLETED", "FAILED", "CANCELLED", "GONE"),
-        300,
-        "the first allocation to end",
-        poll=1.0,
+    # one-minute allocations that stop 40 s before the walltime: about 15 s of work each
+    prof = profile(
+        tmp_path, walltime='"00:01:00"', stop_margin='"40s"', python=f'"{sys.executable}"'
     )
-    assert state(first) in ("TIMEOUT", "GONE")
-    n_first = sum(pq.read_table(p).num_rows for p in (store / "replicas").glob("part-*.parquet"))
-    assert n_first > 0, "the first allocation stored something"
-    second = submit("00:10:00")
-    wait_until(
-        lambda: state(second) in ("COMPLETED", "FAILED", "TIMEOUT", "CANCELLED", "GONE"),
-        900,
-        "the second allocation to end",
-        poll=1.0,
+    proc = cli(
+        "cluster", "submit", recipe, "--store", store, "--cluster", "test", "--profiles", prof
     )
-    time.sleep(1)
-    log = "\n".join(p.read_text() for p in tmp_path.glob("job-*.out"))
-    assert state(second) in ("COMPLETED", "GONE"), log
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+
+    def ended():
+        ends = [r for r in read_links(store) if r.get("event") == "link-end"]
+        return ends and ends[-1]["outcome"] != "continued" and ends[-1]
+
+    last = wait_until(ended, 900, "the chain to end", poll=1.0)
+    out = "\n".join(p.read_text() for p in (store / "allocations").glob("*.*"))
+    assert last["outcome"] == "complete", out
+    links = [r for r in read_links(store) if r.get("event") == "link-start"]
+    assert len(links) >= 3, links  # it took several allocations, none submitted by hand
+    jobs = [r["job"] for r in links]
+    assert len(set(jobs)) == len(jobs)
+    # each link ended by itself before its walltime (Slurm's own record)
+    wait_until(lambda: all(job_end_state(j) for j in jobs), 120, "the last job to end", poll=1.0)
+    assert {job_end_state(j) for j in jobs} == {"COMPLETED"}, out
     pd.testing.assert_frame_equal(merged(store), merged(ref), check_exact=True)
     assert cli("audit", store).returncode == 0
+    rows = pq.read_table(store / "replicas").to_pylist()
+    assert {r["batch_job_id"] for r in rows} <= set(jobs)
+    resumed = [r for r in rows if r["resumed_at_layer"] > 0]
+    for r in resumed[:2]:  # replicas cut by a link's stop continued bit-identically
+        assert_row_recomputes(r)
 
 
 def test_one_listing_sees_live_jobs_and_slurm_tells_how_they_ended():
