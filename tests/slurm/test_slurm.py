@@ -39,13 +39,6 @@ MEDIUM = {
     "replica": {"layers": 46_000, "checkpoint_seconds": 1},
 }
 
-# about three links of 15 s work on two workers
-CHAIN = {
-    "axes": {"widths": [2, 3, 4]},
-    "precision": {"target": 0.0007, "max_layers": 6_160_000},
-    "replica": {"layers": 46_000, "checkpoint_seconds": 1},
-}
-
 
 def profile(tmp: Path, **extra) -> Path:
     body = {
@@ -87,6 +80,15 @@ def no_leftover_jobs():
 
 
 @pytest.fixture(scope="module")
+def medium_reference(tmp_path_factory):
+    """MEDIUM run locally, once for the tests that compare with it."""
+    d = tmp_path_factory.mktemp("slurm-medium-ref")
+    recipe = write_recipe(d / "recipe.toml", MEDIUM)
+    assert cli("run", recipe, "--store", d / "store", "--workers", "2").returncode == 0
+    return merged(d / "store")
+
+
+@pytest.fixture(scope="module")
 def slow_reference(tmp_path_factory):
     d = tmp_path_factory.mktemp("slurm-ref")
     recipe = write_recipe(d / "recipe.toml", SLOW)
@@ -115,10 +117,8 @@ def test_campaign_through_slurmcluster_matches_local(slow_reference, tmp_path):
     assert all(r["worker"].startswith("tls://") for r in rows)
 
 
-def test_worker_job_cancelled_mid_campaign(tmp_path):
+def test_worker_job_cancelled_mid_campaign(medium_reference, tmp_path):
     recipe = write_recipe(tmp_path / "recipe.toml", MEDIUM)
-    ref = tmp_path / "reference"
-    assert cli("run", recipe, "--store", ref, "--workers", "2", timeout=900).returncode == 0
     store = tmp_path / "store"
     drv = start_cli(
         "run",
@@ -144,7 +144,7 @@ def test_worker_job_cancelled_mid_campaign(tmp_path):
     finally:
         if drv.poll() is None:
             drv.kill()
-    pd.testing.assert_frame_equal(merged(store), merged(ref), check_exact=True)
+    pd.testing.assert_frame_equal(merged(store), medium_reference, check_exact=True)
     ids = {r["batch_job_id"] for r in pq.read_table(store / "replicas").to_pylist()}
     assert len(ids) >= 2  # a new job took over after the cancelled one
 
@@ -172,14 +172,12 @@ def test_worker_job_hits_walltime_mid_replica(tmp_path):
     assert "TIMEOUT" in {job_end_state(j) for j in ids}, ids
 
 
-def test_self_continuing_allocations_complete_a_campaign_unattended(tmp_path):
-    recipe = write_recipe(tmp_path / "recipe.toml", CHAIN)
-    ref = tmp_path / "reference"
-    assert cli("run", recipe, "--store", ref, "--workers", "2", timeout=900).returncode == 0
+def test_self_continuing_allocations_complete_a_campaign_unattended(medium_reference, tmp_path):
+    recipe = write_recipe(tmp_path / "recipe.toml", MEDIUM)
     store = tmp_path / "store"
-    # one-minute allocations that stop 40 s before the walltime: about 15 s of work each
+    # one-minute allocations that stop 48 s before the walltime: about 8 s of work each
     prof = profile(
-        tmp_path, walltime='"00:01:00"', stop_margin='"40s"', python=f'"{sys.executable}"'
+        tmp_path, walltime='"00:01:00"', stop_margin='"48s"', python=f'"{sys.executable}"'
     )
     proc = cli(
         "cluster", "submit", recipe, "--store", store, "--cluster", "test", "--profiles", prof
@@ -194,13 +192,13 @@ def test_self_continuing_allocations_complete_a_campaign_unattended(tmp_path):
     out = "\n".join(p.read_text() for p in (store / "allocations").glob("*.*"))
     assert last["outcome"] == "complete", out
     links = [r for r in read_links(store) if r.get("event") == "link-start"]
-    assert len(links) >= 3, links  # it took several allocations, none submitted by hand
+    assert len(links) >= 2, links  # it took several allocations, none submitted by hand
     jobs = [r["job"] for r in links]
     assert len(set(jobs)) == len(jobs)
     # each link ended by itself before its walltime (Slurm's own record)
     wait_until(lambda: all(job_end_state(j) for j in jobs), 120, "the last job to end", poll=1.0)
     assert {job_end_state(j) for j in jobs} == {"COMPLETED"}, out
-    pd.testing.assert_frame_equal(merged(store), merged(ref), check_exact=True)
+    pd.testing.assert_frame_equal(merged(store), medium_reference, check_exact=True)
     assert cli("audit", store).returncode == 0
     rows = pq.read_table(store / "replicas").to_pylist()
     assert {r["batch_job_id"] for r in rows} <= set(jobs)
