@@ -532,6 +532,7 @@ def cluster_submit(
         typer.Option("--stop-margin", help="Stop this long before the walltime (default 5m)."),
     ] = None,
     lease_expiry: Annotated[str | None, typer.Option("--lease-expiry")] = None,
+    dashboard: DashboardOpt = None,
 ) -> None:
     """Submit a self-continuing campaign: each allocation runs scheduler, workers and
     driver, stops shortly before its walltime and submits its successor, until done."""
@@ -541,7 +542,14 @@ def cluster_submit(
     rec = load_recipe_or_fail(recipe)
     _check_against_store(rec, store, recipe)
     prof = load_profile(cluster, profiles, {"walltime": walltime, "queue": queue})
-    jid = submit_chain(recipe, store, prof, stop_margin, _seconds(lease_expiry, "--lease-expiry"))
+    jid = submit_chain(
+        recipe,
+        store,
+        prof,
+        stop_margin,
+        _seconds(lease_expiry, "--lease-expiry"),
+        dashboard=_dashboard(dashboard),
+    )
     console.print(
         f"submitted job {jid} ({prof.system}, walltime {prof.walltime}); the campaign now "
         f"continues itself until complete.\n  watch: sweepctl status {store}\n  stop:  "
@@ -645,12 +653,18 @@ def status(
     from sweepctl.bench import cost_model
     from sweepctl.campaign.store import Store
     from sweepctl.campaign.summary import status_rows
+    from sweepctl.cluster.chain import chain_summary
 
     st = Store(store)
+    chain = chain_summary(st.root)
+    if chain is not None and not st.exists():  # submitted; no link has started the store
+        _print_chain(chain)
+        return
     st.require()
     cost, _ = cost_model([4], calibration, measure=False)
     rows, totals = status_rows(st, cost)
     if json_out:
+        totals["allocations"] = chain
         print(json.dumps({"totals": totals, "points": rows}, indent=2, default=str))
         return
     t = Table(title=f"{totals['campaign']}: {totals['done']}/{totals['points']} points done")
@@ -682,6 +696,21 @@ def status(
     )
     for line in _status_lines(totals):
         console.print(line, highlight=False, soft_wrap=True)
+    if chain is not None:
+        _print_chain(chain)
+
+
+def _print_chain(chain: dict) -> None:
+    last = chain["last"]
+    what = last.get("outcome") or last.get("event")
+    extra = f", successor {last['successor']}" if last.get("successor") else ""
+    stop = "; stop requested" if chain["stop_requested"] else ""
+    console.print(
+        f"allocations: {chain['links']} links so far; last: job {last.get('job', '—')} "
+        f"{what}{extra} at {last.get('time')}{stop} (STORE/allocations/links.jsonl)",
+        highlight=False,
+        soft_wrap=True,
+    )
 
 
 def _status_lines(totals: dict) -> list[str]:

@@ -78,6 +78,7 @@ class ChainConfig:
     lease_expiry_seconds: float | None
     replica_seconds: float
     created: str
+    dashboard: str | None = None  # HOST:PORT of each link's Dask dashboard (opt-in)
 
     @classmethod
     def read(cls, store_root: Path) -> ChainConfig:
@@ -205,6 +206,7 @@ def submit_chain(
     stop_margin: str | None = None,
     lease_expiry: float | None = None,
     python: str | None = None,
+    dashboard: str | None = None,
 ) -> str:
     """Write ``STORE/allocations/`` and submit the first link; returns its job id."""
     from sweepctl.campaign.store import atomic_write_bytes
@@ -222,6 +224,7 @@ def submit_chain(
         lease_expiry_seconds=lease_expiry,
         replica_seconds=p.replica_seconds(),
         created=_now(),
+        dashboard=dashboard,
     )
     atomic_write_bytes(d / "recipe.toml", Path(recipe_path).read_bytes())
     atomic_write_bytes(d / "chain.json", (json.dumps(asdict(cfg), indent=2) + "\n").encode())
@@ -240,6 +243,16 @@ def _open_jobs(links: list[dict]) -> list[str]:
     submitted += [r["successor"] for r in links if r.get("successor")]
     ended = {r["job"] for r in links if r.get("event") == "link-end"}
     return [j for j in dict.fromkeys(submitted) if j not in ended]
+
+
+def chain_summary(store_root: Path) -> dict | None:
+    """The chain's state for ``status``: its last record and how many links ran."""
+    links = read_links(store_root)
+    if not links:
+        return None
+    starts = [r for r in links if r.get("event") == "link-start"]
+    stopped = (chain_dir(store_root) / "stop").exists()
+    return {"links": len(starts), "last": links[-1], "stop_requested": stopped}
 
 
 def stop_chain(store_root: Path, cancel: bool = True) -> dict:
@@ -316,6 +329,7 @@ def run_link(store_root: Path, cost, report=None) -> tuple[str, int]:
         workers=cfg.workers,
         lease_expiry=cfg.lease_expiry_seconds,
         default_replica_seconds=cfg.replica_seconds,
+        dashboard=cfg.dashboard,
     )
     # a lease left by a link that died without its clean-up expires within its expiry
     from sweepctl.campaign.store import LEASE_EXPIRY_SECONDS

@@ -9,7 +9,8 @@ import pytest
 
 FAKE = {
     # a submission counter; prints what sbatch prints
-    "sbatch": 'n=$(($(cat "$D/n" 2>/dev/null || echo 0) + 1)); echo $n > "$D/n"\n'
+    "sbatch": 'exec 9>"$D/lock"; flock 9\n'  # dask-jobqueue submits jobs concurrently
+    'n=$(($(cat "$D/n" 2>/dev/null || echo 0) + 1)); echo $n > "$D/n"\n'
     'echo "submit $n $*" >> "$D/log"; echo "Submitted batch job $n"\n',
     "scancel": 'echo "cancel $*" >> "$D/log"\n',
     # the listing: fails, hangs, or prints $D/listing, as $D/mode says

@@ -90,6 +90,7 @@ def test_submit_writes_the_chain_and_stop_cancels_it(fake_slurm, tmp_path):
     assert proc.returncode == 0 and "stopped" in proc.stdout, proc.stdout + proc.stderr
     assert len(log_lines(fake_slurm, "submit")) == 1
     assert read_links(store)[-1]["outcome"] == "stopped"
+    assert "job 1 stopped" in cli("status", store).stdout.replace("\n", " ")
 
 
 def test_two_links_without_progress_stop_the_chain(fake_slurm, tmp_path):

@@ -26,13 +26,17 @@ def rows(store) -> pa.Table:
 
 @pytest.fixture(scope="module")
 def many_parts(tmp_path_factory):
-    """A finished store of several part files (a flush every 5 s)."""
+    """A finished store of at least three part files, grown by three runs that each
+    add a width (each run writes its own part files), and a copy of it after two."""
     d = tmp_path_factory.mktemp("compact")
-    recipe = write_recipe(d / "recipe.toml", FAULT)
     store = d / "store"
-    proc = cli("run", recipe, "--store", store, "--workers", "2", "--compact-at", "1000")
-    assert proc.returncode == 0, proc.stdout + proc.stderr
-    kill_pids(worker_pids(store))
+    for widths in ([2], [2, 3], [2, 3, 4]):
+        recipe = write_recipe(d / "recipe.toml", {**FAULT, "axes": {"widths": widths}})
+        if widths == [2, 3, 4]:
+            shutil.copytree(store, d / "partial")
+        proc = cli("run", recipe, "--store", store, "--workers", "2", "--compact-at", "1000")
+        kill_pids(worker_pids(store))
+        assert proc.returncode == 0, proc.stdout + proc.stderr
     assert len(Store(store).part_files()) >= 3
     return store, recipe
 
@@ -61,16 +65,16 @@ def test_compaction_killed_at_each_step_loses_and_changes_nothing(many_parts, tm
 
 
 def test_driver_compacts_past_the_threshold(many_parts, tmp_path):
-    from tests.campaign.test_faults import FAULT as F
-
-    src, _ = many_parts
-    recipe = write_recipe(tmp_path / "recipe.toml", F)
+    src, recipe = many_parts
     store = tmp_path / "store"
-    proc = cli("run", recipe, "--store", store, "--workers", "2", "--compact-at", "3")
+    shutil.copytree(src.parent / "partial", store)  # two widths done, in >= 2 part files
+    assert len(Store(store).part_files()) >= 2
+    proc = cli("run", recipe, "--store", store, "--workers", "2", "--compact-at", "2")
     kill_pids(worker_pids(store))
     assert proc.returncode == 0, proc.stdout + proc.stderr
-    assert any(e.get("event") == "compacted" for e in events(store))
-    assert len(Store(store).part_files()) < 3 + 1  # never more than the threshold left
+    start = [e for e in events(store) if e.get("event") == "run-start"][-1]
+    assert start["compacted"]["files_read"] >= 2  # at start: past the threshold already
+    assert len(Store(store).small_part_files()) < 2 + 1  # never more than the threshold
     pd.testing.assert_frame_equal(merged(store), merged(src), check_exact=True)
 
 
