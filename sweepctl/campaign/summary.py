@@ -111,7 +111,10 @@ def driver_state(store: Store) -> dict:
     if st is None:
         return {"state": "never"}
     state = "stopped" if st.released else ("lost" if st.free() else "running")
-    return {"state": state, **st.to_json()}
+    out = {"state": state, **st.to_json()}
+    if state != "running":  # a countdown only means something for a live lease
+        out.pop("expires_in_seconds")
+    return out
 
 
 def _work(point, layers: int, warmup: int, strips: int, cost: CostModel | None) -> float:

@@ -40,6 +40,15 @@ MEDIUM = {
 }
 
 
+# several one-minute links of about 8 s work each: 6 to 20 s of work on two workers here
+# (idle to busy machine), three times MEDIUM's replicas ((0.001 / 0.0006)^2 = 2.8)
+CHAIN = {
+    "axes": {"widths": [2, 3, 4]},
+    "precision": {"target": 0.0006, "max_layers": 6_160_000},
+    "replica": {"layers": 46_000, "checkpoint_seconds": 1},
+}
+
+
 def profile(tmp: Path, **extra) -> Path:
     body = {
         "system": '"slurm"',
@@ -149,6 +158,7 @@ def test_worker_job_cancelled_mid_campaign(medium_reference, tmp_path):
     assert len(ids) >= 2  # a new job took over after the cancelled one
 
 
+@pytest.mark.slow  # 3-4 minutes: a one-minute job's TIMEOUT, then the rest of the replica
 def test_worker_job_hits_walltime_mid_replica(tmp_path):
     # derived: 154 000 layers of this replica took 6.8 s of CPU here (tests/benchmarks
     # numbers vary by machine), so 2.31 M layers need ~100 s, more than a one-minute job
@@ -175,8 +185,9 @@ def test_worker_job_hits_walltime_mid_replica(tmp_path):
     assert "TIMEOUT" in {job_end_state(j) for j in ids}, ids
 
 
-def test_self_continuing_allocations_complete_a_campaign_unattended(medium_reference, tmp_path):
-    recipe = write_recipe(tmp_path / "recipe.toml", MEDIUM)
+def test_self_continuing_allocations_complete_a_campaign_unattended(tmp_path):
+    recipe = write_recipe(tmp_path / "recipe.toml", CHAIN)
+    assert cli("run", recipe, "--store", tmp_path / "ref", "--workers", "2").returncode == 0
     store = tmp_path / "store"
     # one-minute allocations that stop 48 s before the walltime: about 8 s of work each
     prof = profile(
@@ -201,7 +212,7 @@ def test_self_continuing_allocations_complete_a_campaign_unattended(medium_refer
     # each link ended by itself before its walltime (Slurm's own record)
     wait_until(lambda: all(job_end_state(j) for j in jobs), 120, "the last job to end", poll=1.0)
     assert {job_end_state(j) for j in jobs} == {"COMPLETED"}, out
-    pd.testing.assert_frame_equal(merged(store), medium_reference, check_exact=True)
+    pd.testing.assert_frame_equal(merged(store), merged(tmp_path / "ref"), check_exact=True)
     assert cli("audit", store).returncode == 0
     rows = pq.read_table(store / "replicas").to_pylist()
     assert {r["batch_job_id"] for r in rows} <= set(jobs)
