@@ -16,8 +16,12 @@ def status(store) -> dict:
     return json.loads(proc.stdout)
 
 
+# FAULT with four times the replicas ((0.001 / 0.0005)^2): still running after two flushes
+LONGER = {**FAULT, "precision": {"target": 0.0005, "max_layers": 3_680_000}}
+
+
 def test_status_while_running_after_a_kill_and_when_done(tmp_path):
-    recipe = write_recipe(tmp_path / "r.toml", FAULT)
+    recipe = write_recipe(tmp_path / "r.toml", LONGER)
     store = tmp_path / "store"
     drv = start_cli("run", recipe, "--store", store, "--workers", "2")
     try:
@@ -25,6 +29,7 @@ def test_status_while_running_after_a_kill_and_when_done(tmp_path):
             lambda: len(list((store / "replicas").glob("part-*.parquet"))) >= 2, 120, "two batches"
         )
         live = status(store)
+        assert drv.poll() is None, "the campaign ended before status could see it run"
         d = live["totals"]["driver"]
         assert d["state"] == "running" and d["pid"] == drv.pid
         assert d["host"] == socket.gethostname()
