@@ -160,9 +160,9 @@ def test_worker_job_cancelled_mid_campaign(medium_reference, tmp_path):
 
 @pytest.mark.slow  # 3-4 minutes: a one-minute job's TIMEOUT, then the rest of the replica
 def test_worker_job_hits_walltime_mid_replica(tmp_path):
-    # derived: 154 000 layers of this replica took 6.8 s of CPU here (tests/benchmarks
-    # numbers vary by machine), so 2.31 M layers need ~100 s, more than a one-minute job
-    # can give it even on an idle machine: the walltime always cuts it
+    # derived: 154 000 layers of this replica took 6.8 s of CPU on this machine, so
+    # 2.31 M layers need ~100 s, more than a one-minute job can give it even when the
+    # machine is idle: the walltime always cuts it
     over = {
         "axes": {"widths": [8], "couplings": [0.1]},
         "precision": {"target": 0.5, "max_layers": 2_310_000},
