@@ -204,6 +204,30 @@ def bench(
 # ----------------------------------------------------------------------------- campaigns
 
 StoreArg = Annotated[Path, typer.Argument(help="Campaign store directory.")]
+#: the store after the recipe (run, plan, cluster submit): an argument like everywhere
+#: else; ``--store`` stays accepted, hidden, for scripts written before
+StoreAfterRecipe = Annotated[
+    Path | None,
+    typer.Argument(help="Campaign store directory (made by the first run).", show_default=False),
+]
+StoreOptionOld = Annotated[
+    Path | None,
+    typer.Option("--store", hidden=True, help="The store as an option (older spelling)."),
+]
+
+
+def _one_store(arg: Path | None, opt: Path | None, usage: str, required: bool = True):
+    """The store given as the argument or the older ``--store`` option, not both."""
+    if arg is not None and opt is not None and arg != opt:
+        raise UserError(
+            f"STORE = {str(arg)!r} and --store = {str(opt)!r}: give the store once, e.g. {usage}"
+        )
+    store = arg if arg is not None else opt
+    if store is None and required:
+        raise UserError(f"STORE: missing; give the campaign store directory, e.g. {usage}")
+    return store
+
+
 RecipeArg = Annotated[Path, typer.Argument(help="Recipe file (TOML).")]
 CalibrationOpt = Annotated[
     Path | None,
@@ -255,20 +279,22 @@ def new(
 @app.command()
 def plan(
     recipe: RecipeArg,
-    json_out: Annotated[bool, typer.Option("--json", help="Print the plan as JSON.")] = False,
-    calibration: CalibrationOpt = None,
-    store: Annotated[
+    store_arg: Annotated[
         Path | None,
-        typer.Option(
-            "--store",
-            help="Preview what `run` would do on this store (new and reopened points).",
+        typer.Argument(
+            help="A store: preview what `run` would do there (new and reopened points).",
+            show_default=False,
         ),
     ] = None,
+    json_out: Annotated[bool, typer.Option("--json", help="Print the plan as JSON.")] = False,
+    calibration: CalibrationOpt = None,
+    store_opt: StoreOptionOld = None,
 ) -> None:
     """Points, replicas, seeds and estimated cost of a recipe (nothing is run)."""
     from sweepctl.bench import cost_model
     from sweepctl.campaign.plan import make_plan
 
+    store = _one_store(store_arg, store_opt, "sweepctl plan RECIPE STORE", required=False)
     rec = load_recipe_or_fail(recipe)
     with console.status("calibrating the kernel…") if not json_out else _null():
         cost, origin = cost_model(list(rec.widths), calibration)
@@ -411,6 +437,14 @@ class _RunDisplay:
             self._plain()
 
 
+DashboardOpt = Annotated[
+    str | None,
+    typer.Option(
+        "--dashboard",
+        help="Serve the Dask dashboard on PORT or HOST:PORT (default host 127.0.0.1; "
+        "'on' picks a free port); its address is printed.",
+    ),
+]
 SchedulerOpt = Annotated[
     str | None, typer.Option("--scheduler", help="Address of a running Dask scheduler.")
 ]
@@ -422,7 +456,8 @@ SchedulerFileOpt = Annotated[
 @app.command()
 def run(
     recipe: RecipeArg,
-    store: Annotated[Path, typer.Option("--store", help="Campaign store directory.")],
+    store_arg: StoreAfterRecipe = None,
+    store_opt: StoreOptionOld = None,
     workers: Annotated[
         int | None,
         typer.Option("--workers", min=1, help="Local worker processes (default: cores)."),
@@ -448,6 +483,29 @@ def run(
         int | None,
         typer.Option("--max-jobs", min=1, help="Most worker jobs at once (adaptive scaling)."),
     ] = None,
+    lease_expiry: Annotated[
+        str | None,
+        typer.Option(
+            "--lease-expiry",
+            help="How long the store's lease lasts without a heartbeat before a driver on "
+            "any host may take over (default 10m; e.g. 90s, 5m).",
+        ),
+    ] = None,
+    lease_wait: Annotated[
+        str | None,
+        typer.Option(
+            "--lease-wait", help="Wait this long for another driver's lease to end or expire."
+        ),
+    ] = None,
+    dashboard: DashboardOpt = None,
+    compact_at: Annotated[
+        int,
+        typer.Option(
+            "--compact-at",
+            min=2,
+            help="Compact the store's part files once this many small ones exist.",
+        ),
+    ] = 64,
 ) -> None:
     """Run or continue a campaign until every point reaches its precision (or cap)."""
     from sweepctl.bench import cost_model
@@ -455,6 +513,7 @@ def run(
     from sweepctl.campaign.driver import run_campaign
     from sweepctl.campaign.store import Store
 
+    store = _one_store(store_arg, store_opt, "sweepctl run RECIPE STORE")
     ways = (
         ("--scheduler", scheduler),
         ("--scheduler-file", scheduler_file),
@@ -470,13 +529,17 @@ def run(
         workers=workers,
         scheduler=scheduler,
         scheduler_file=str(scheduler_file) if scheduler_file else None,
+        lease_expiry=_seconds(lease_expiry, "--lease-expiry"),
+        lease_wait=_seconds(lease_wait, "--lease-wait") or 0.0,
+        dashboard=_dashboard(dashboard),
+        compact_at=compact_at,
     )
     if cluster:
         from sweepctl.cluster import load_profile, make_cluster
 
         over = {"walltime": walltime, "queue": queue, "min_jobs": min_jobs, "max_jobs": max_jobs}
         prof = load_profile(cluster, profiles, over)
-        opts.cluster_factory = lambda: make_cluster(prof, st.root)
+        opts.cluster_factory = lambda: make_cluster(prof, st.root, opts.dashboard)
         opts.default_replica_seconds = prof.replica_seconds()
     elif _wants_tls(scheduler, scheduler_file):
         from sweepctl.cluster import make_security
@@ -502,6 +565,33 @@ def run(
         raise typer.Exit(130)
     if res.failed:
         raise typer.Exit(1)
+
+
+def _seconds(text: str | None, option: str) -> float | None:
+    from sweepctl.cluster import parse_duration
+
+    if text is None:
+        return None
+    secs = parse_duration(text, option)
+    if option == "--lease-expiry" and secs < 1:
+        raise UserError(f"{option} = {text!r}: must be at least 1s, e.g. {option} 10m")
+    return float(secs)
+
+
+def _dashboard(text: str | None) -> str | None:
+    """``--dashboard`` without a value, or with a port or host:port (loopback unless a
+    host is given)."""
+    if text is None:
+        return None
+    t = text.strip()
+    if t in ("", "on", "auto"):
+        return "127.0.0.1:0"
+    if t.isdigit():
+        return f"127.0.0.1:{t}"
+    host, _, port = t.rpartition(":")
+    if not host or not port.isdigit():
+        raise UserError(f"--dashboard = {text!r}: give a port (8787) or HOST:PORT (127.0.0.1:8787)")
+    return t
 
 
 def _wants_tls(scheduler: str | None, scheduler_file: Path | None) -> bool:
@@ -534,6 +624,149 @@ def cluster_script(
 
     p = load_profile(profile, profiles, {"walltime": walltime, "queue": queue})
     print(job_script(p))
+
+
+@cluster_app.command("list")
+def cluster_list(
+    profiles: Annotated[Path | None, typer.Option("--profiles", help="Profile file.")] = None,
+) -> None:
+    """List the batch profiles (the user's file, then the bare system names)."""
+    from sweepctl.cluster.batch import list_profiles
+
+    path, rows = list_profiles(profiles)
+    t = Table(title=f"profiles ({path or 'no profile file; packaged defaults only'})")
+    for c in ("name", "system", "walltime", "cores", "max jobs", "from"):
+        t.add_column(c)
+    for r in rows:
+        t.add_row(r.name, r.system, r.walltime, str(r.cores), str(r.max_jobs), r.source)
+    console.print(t)
+
+
+@cluster_app.command("show")
+def cluster_show(
+    name: Annotated[str, typer.Argument(help="Profile name (or slurm/pbs/sge/lsf).")],
+    profiles: Annotated[Path | None, typer.Option("--profiles", help="Profile file.")] = None,
+) -> None:
+    """Print a profile's resolved settings (packaged defaults < file < command line)."""
+    from sweepctl.cluster.batch import describe_profile, load_profile
+
+    for key, value in describe_profile(load_profile(name, profiles)):
+        console.print(f"{key:<18} {value}", highlight=False, soft_wrap=True)
+
+
+@cluster_app.command("submit")
+def cluster_submit(
+    recipe: RecipeArg,
+    store_arg: StoreAfterRecipe = None,
+    store_opt: StoreOptionOld = None,
+    cluster: Annotated[str, typer.Option("--cluster", help="Batch profile (or slurm/pbs/…).")] = "",
+    profiles: Annotated[Path | None, typer.Option("--profiles", help="Profile file.")] = None,
+    walltime: Annotated[str | None, typer.Option("--walltime", help="Per allocation.")] = None,
+    queue: Annotated[
+        str | None, typer.Option("--queue", help="Partition / queue (wins over the profile).")
+    ] = None,
+    stop_margin: Annotated[
+        str | None,
+        typer.Option("--stop-margin", help="Stop this long before the walltime (default 5m)."),
+    ] = None,
+    lease_expiry: Annotated[
+        str | None,
+        typer.Option(
+            "--lease-expiry",
+            help="Lease expiry of each link's driver (default 10m; e.g. 90s, 5m).",
+        ),
+    ] = None,
+    dashboard: DashboardOpt = None,
+) -> None:
+    """Submit a self-continuing campaign: each allocation runs scheduler, workers and
+    driver, stops shortly before its walltime and submits its successor, until done."""
+    from sweepctl.cluster import load_profile
+    from sweepctl.cluster.chain import submit_chain
+
+    store = _one_store(store_arg, store_opt, "sweepctl cluster submit RECIPE STORE --cluster NAME")
+    if not cluster:
+        raise UserError(
+            "--cluster: missing; name a batch profile, e.g. --cluster slurm-standard "
+            "(see sweepctl cluster list)"
+        )
+    rec = load_recipe_or_fail(recipe)
+    _check_against_store(rec, store, recipe)
+    prof = load_profile(cluster, profiles, {"walltime": walltime, "queue": queue})
+    jid = submit_chain(
+        recipe,
+        store,
+        prof,
+        stop_margin,
+        _seconds(lease_expiry, "--lease-expiry"),
+        dashboard=_dashboard(dashboard),
+    )
+    console.print(
+        f"submitted job {jid} ({prof.system}, walltime {prof.walltime}); the campaign now "
+        f"continues itself until complete.\n  watch: sweepctl status {store}\n  stop:  "
+        f"sweepctl cluster stop {store}",
+        highlight=False,
+        soft_wrap=True,
+    )
+
+
+def _check_against_store(rec, store: Path, source: Path) -> None:
+    """Refuse a recipe change the store would refuse, before anything is queued."""
+    from sweepctl.campaign.plan import Frozen, check_compatible
+    from sweepctl.campaign.store import Store
+
+    st = Store(store)
+    if st.exists():
+        check_compatible(rec, Frozen.from_json(st.read_campaign()["frozen"]), str(source))
+
+
+@cluster_app.command("stop")
+def cluster_stop(
+    store: StoreArg,
+    let_finish: Annotated[
+        bool,
+        typer.Option(
+            "--let-finish", help="Let the running link work until its stop margin, then end."
+        ),
+    ] = False,
+) -> None:
+    """Stop a self-continuing campaign: no link continues it; queued and running links
+    are cancelled (the running driver stores what it has first)."""
+    from sweepctl.cluster.chain import stop_chain
+
+    res = stop_chain(store, cancel=not let_finish)
+    jobs = ", ".join(res["cancelled"]) or "none"
+    console.print(
+        f"stopped: no link will continue the campaign; cancelled jobs: {jobs}. "
+        f"Continue later with `sweepctl cluster submit RECIPE {store} --cluster NAME`.",
+        highlight=False,
+        soft_wrap=True,
+    )
+
+
+@cluster_app.command("link", hidden=True)
+def cluster_link(
+    store_arg: Annotated[
+        Path | None, typer.Argument(help="Campaign store directory.", show_default=False)
+    ] = None,
+    store_opt: StoreOptionOld = None,
+    calibration: CalibrationOpt = None,
+) -> None:
+    """One link of a self-continuing campaign (run by the job script)."""
+    from sweepctl.bench import cost_model
+    from sweepctl.campaign.recipe import load_recipe
+    from sweepctl.cluster.chain import chain_dir, run_link
+
+    store = _one_store(store_arg, store_opt, "sweepctl cluster link STORE")
+    rec = load_recipe(chain_dir(store) / "recipe.toml")
+    needs = rec.replica_layers is None or rec.max_cpu_hours is not None
+    cost, _ = cost_model(list(rec.widths), calibration, measure=needs)
+    display = _RunDisplay()
+    try:
+        outcome, code = run_link(store, cost, display)
+    finally:
+        display.close()
+    console.print(f"link ended: {outcome}")
+    raise typer.Exit(code)
 
 
 @app.command()
@@ -587,12 +820,18 @@ def status(
     from sweepctl.bench import cost_model
     from sweepctl.campaign.store import Store
     from sweepctl.campaign.summary import status_rows
+    from sweepctl.cluster.chain import chain_summary
 
     st = Store(store)
+    chain = chain_summary(st.root)
+    if chain is not None and not st.exists():  # submitted; no link has started the store
+        _print_chain(chain)
+        return
     st.require()
     cost, _ = cost_model([4], calibration, measure=False)
     rows, totals = status_rows(st, cost)
     if json_out:
+        totals["allocations"] = chain
         _print_json({"totals": totals, "points": rows})
         return
     t = Table(title=f"{totals['campaign']}: {totals['done']}/{totals['points']} points done")
@@ -617,8 +856,90 @@ def status(
         console.print(f"({len(rows) - len(shown)} more points not shown; use --json)")
     console.print(
         f"done {totals['done']}, capped {totals['capped']}, running {totals['running']}, "
-        f"pending {totals['pending']}; {totals['replicas']} replicas stored; remaining "
-        f"{_hours(totals['remaining_cpu_hours'])} CPU for the current rounds"
+        f"partial {totals['partial']}, pending {totals['pending']}; {totals['replicas']} "
+        f"replicas stored; remaining {_hours(totals['remaining_cpu_hours'])} CPU for the "
+        "current rounds",
+        highlight=False,
+    )
+    for line in _status_lines(totals):
+        console.print(line, highlight=False, soft_wrap=True)
+    if chain is not None:
+        _print_chain(chain)
+
+
+def _print_chain(chain: dict) -> None:
+    last = chain["last"]
+    what = last.get("outcome") or last.get("event")
+    extra = f", successor {last['successor']}" if last.get("successor") else ""
+    stop = "; stop requested" if chain["stop_requested"] else ""
+    console.print(
+        f"allocations: {chain['links']} links so far; last: job {last.get('job', '—')} "
+        f"{what}{extra} at {last.get('time')}{stop} (STORE/allocations/links.jsonl)",
+        highlight=False,
+        soft_wrap=True,
+    )
+
+
+def _status_lines(totals: dict) -> list[str]:
+    d = totals["driver"]
+    who = f"pid {d.get('pid')} on {d.get('host')}"
+    if d["state"] == "running":
+        drv = (
+            f"driver: running, {who}, last heartbeat {d['last_heartbeat']} (lease expires in "
+            f"{d['expires_in_seconds']:.0f} s unless renewed)"
+        )
+    elif d["state"] == "stopped":
+        drv = f"driver: none (the last one, {who}, stopped at {d['last_heartbeat']})"
+    elif d["state"] == "lost":
+        drv = (
+            f"driver: none — the last one, {who}, stopped renewing its lease at "
+            f"{d['last_heartbeat']} without a clean-up; the next run takes over"
+        )
+    else:
+        drv = "driver: none has run yet"
+    lines = [drv]
+    ev = totals.get("last_event")
+    if ev:
+        what = ev.get("event")
+        extra = f" (point {ev['point']}, replica {ev['replica']})" if "replica" in ev else ""
+        lines.append(f"last event: {what}{extra} at {ev.get('time')}")
+    eta = totals.get("eta_seconds")
+    if totals["done"] + totals["capped"] < totals["points"]:
+        if eta is None:
+            lines.append(f"ETA: unknown ({totals.get('throughput_basis')})")
+        else:
+            cond = "" if d["state"] == "running" else ", once a driver runs again"
+            lines.append(
+                f"ETA: {_duration(eta)} of wall clock for the current rounds at the "
+                f"throughput observed over {totals['throughput_basis']}{cond}"
+            )
+    return lines
+
+
+@app.command()
+def compact(
+    store: StoreArg,
+    lease_wait: Annotated[
+        str | None,
+        typer.Option("--lease-wait", help="Wait this long for a running driver's lease."),
+    ] = None,
+) -> None:
+    """Merge the store's small part files into large ones; remove orphaned checkpoints.
+
+    Takes the store's lease (never alongside a driver); safe to kill at any moment.
+    """
+    from sweepctl.campaign.store import Store
+    from sweepctl.campaign.summary import compact_store
+
+    st = Store(store)
+    st.require()
+    res = compact_store(st, wait=_seconds(lease_wait, "--lease-wait") or 0.0)
+    console.print(
+        f"{res['files_before']} part files -> {res['files_after']} "
+        f"({res['files_read']} small ones merged into {res['files_written']}); "
+        f"{res['removed_checkpoints']} checkpoints of stored replicas removed",
+        highlight=False,
+        soft_wrap=True,
     )
 
 

@@ -10,6 +10,7 @@ import contextlib
 import logging
 import os
 import threading
+import time
 import warnings
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -29,6 +30,10 @@ class RunOptions:
     cluster_factory: Callable[[], object] | None = None  # batch-system clusters
     security: object | None = None  # distributed.Security for TLS clusters
     default_replica_seconds: float | None = None  # from a batch profile's walltime
+    lease_expiry: float | None = None  # seconds; None: store.LEASE_EXPIRY_SECONDS
+    lease_wait: float = 0.0  # seconds to wait for another driver's lease to end or expire
+    dashboard: str | None = None  # "HOST:PORT" to serve the Dask dashboard on (opt-in)
+    compact_at: int = 64  # compact part files once this many small ones exist
 
 
 class Connection:
@@ -76,11 +81,15 @@ class Connection:
                 threads_per_worker=1,
                 processes=True,
                 host="127.0.0.1",
-                dashboard_address=None,
+                # always served (health routes); without --dashboard on a free port
+                dashboard_address=options.dashboard or "127.0.0.1:0",
                 silence_logs=logging.ERROR,
             )
             self.client = Client(self.cluster)
             self.kind = f"local cluster, {n} worker processes"
+        self.dashboard: str | None = None
+        if options.dashboard:
+            self.dashboard = dashboard_address(self.client)
 
     #: callback for watchdog reports (set by the driver)
     on_event: Callable[[dict], None] | None = None
@@ -88,19 +97,31 @@ class Connection:
     fatal: str | None = None
 
     def _watchdog(self) -> None:
-        """Every 10 s, forget batch jobs that ended behind dask-jobqueue's back.
+        """Poll the batch system (at most every ``sweepctl_poll_seconds``, one query for
+        all jobs) and forget jobs that ended behind dask-jobqueue's back.
 
         The batch layer attaches ``sweepctl_prune`` (a function of no arguments that
-        drops ended jobs and returns their ids) to the clusters it makes; the driver
-        only calls it, so this layer never imports the batch layer.
+        drops ended jobs and returns their ids, or ``None`` when the batch system did
+        not answer) to the clusters it makes; the driver only calls it, so this layer
+        never imports the batch layer.
         """
         prune = getattr(self.cluster, "sweepctl_prune", None)
+        every = float(getattr(self.cluster, "sweepctl_poll_seconds", 30.0))
         ever_connected = False
         ended_unconnected = 0
-        while prune is not None and not self._watch.wait(10.0):
+        unknown_since = None
+        while prune is not None and not self._watch.wait(every):
             with contextlib.suppress(Exception):
                 ever_connected |= bool(self.client.scheduler_info().get("workers"))
                 dropped = self.cluster.sync(_call, prune)
+                if dropped is None:  # no answer: the jobs are unknown, not dead
+                    if unknown_since is None and self.on_event:
+                        self.on_event({"event": "jobs-unknown", "jobs": self._job_ids()})
+                    unknown_since = unknown_since or time.monotonic()
+                    continue
+                if unknown_since is not None and self.on_event:
+                    self.on_event({"event": "jobs-known-again"})
+                unknown_since = None
                 if dropped and self.on_event:
                     self.on_event({"event": "jobs-ended", "jobs": dropped})
                 if not ever_connected:
@@ -116,6 +137,13 @@ class Connection:
 
                     _thread.interrupt_main()
                     return
+
+    def _job_ids(self) -> list[str]:
+        return [
+            str(j.job_id)
+            for j in list(getattr(self.cluster, "workers", {}).values())
+            if getattr(j, "job_id", None)
+        ]
 
     def worker_pids(self) -> dict[str, list[int]]:
         """``{address: [pid, parent pid]}`` of every worker (for the events log)."""
@@ -136,6 +164,17 @@ class Connection:
         if self.cluster is not None:
             with contextlib.suppress(Exception):
                 self.cluster.close(timeout=20)
+
+
+def dashboard_address(client) -> str | None:
+    """The scheduler's HTTP address (its dashboard), from the scheduler itself."""
+    with contextlib.suppress(Exception):
+        info = client.scheduler_info()
+        port = info.get("services", {}).get("dashboard")
+        if port:
+            host = info["address"].split("://", 1)[-1].rsplit(":", 1)[0]
+            return f"http://{host}:{port}/"
+    return None
 
 
 async def _call(fn, *args):

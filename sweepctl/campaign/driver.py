@@ -19,6 +19,7 @@ import logging
 import math
 import os
 import signal
+import socket
 import threading
 import time
 from collections.abc import Callable
@@ -177,18 +178,31 @@ class Driver:
                     "choose an empty or new directory"
                 )
             store.root.mkdir(parents=True, exist_ok=True)
-        with store.locked():
+        with store.locked(expiry=self.options.lease_expiry, wait=self.options.lease_wait) as lease:
             removed = store.cleanup()
             preview = self.replay()
+            orphans = store.remove_stored_checkpoints(
+                {(pp.point.short, r) for pp in self.progress.values() for r in pp.done}
+            )
+            compacted = self._compact(at_least=self.options.compact_at)
+            prev = lease.previous
             store.append_events(
                 [
                     {
                         "time": now_iso(),
                         "event": "run-start",
                         "pid": os.getpid(),
+                        "host": socket.gethostname(),
+                        "lease": lease.generation,
+                        "lease_expiry": lease.expiry,
+                        "took_over": None
+                        if prev is None or prev.released
+                        else {"pid": prev.pid, "host": prev.host, "generation": prev.generation},
                         "recipe": self.recipe.digest(),
                         "stored_rows": preview.stored_rows,
                         "removed_temporaries": [str(p) for p in removed],
+                        "removed_checkpoints": orphans,
+                        "compacted": compacted,
                         "preview": preview.to_json(),
                     }
                 ]
@@ -228,18 +242,20 @@ class Driver:
                         self.say({"kind": "log", "message": "interrupted: saving what has arrived"})
                 finally:
                     self._closing = True  # from here on a signal is only noted
-                    self.flush(final=True)
-                    store.append_events(
-                        [
-                            {
-                                "time": now_iso(),
-                                "event": "interrupted" if self.interrupted else "run-end",
-                                "computed": self.computed,
-                            }
-                        ]
-                    )
-                    if self.conn is not None:
-                        self.conn.close()
+                    try:
+                        self.flush(final=True)
+                        store.append_events(
+                            [
+                                {
+                                    "time": now_iso(),
+                                    "event": "interrupted" if self.interrupted else "run-end",
+                                    "computed": self.computed,
+                                }
+                            ]
+                        )
+                    finally:
+                        if self.conn is not None:
+                            self.conn.close()
         return self._result(t0)
 
     def replay(self) -> RunPreview:
@@ -284,6 +300,10 @@ class Driver:
             ]
         )
         self.say({"kind": "log", "message": f"connected: {self.conn.kind}"})
+        if self.options.dashboard:
+            where = self.conn.dashboard or "not served (the scheduler has no HTTP server)"
+            self._event({"event": "dashboard", "address": self.conn.dashboard})
+            self.say({"kind": "log", "message": f"dashboard: {where}"})
         self.futures = as_completed(with_results=False)
 
     def submit(self, pp: PointProgress) -> None:
@@ -419,12 +439,17 @@ class Driver:
                     raise
                 if os.environ.get("SWEEPCTL_FAULT") == "signal-in-flush" and not final:
                     os.kill(os.getpid(), signal.SIGTERM)  # fault-injection hook for tests
+                if os.environ.get("SWEEPCTL_FAULT") == "kill-after-rows":
+                    os.kill(os.getpid(), signal.SIGKILL)  # rows stored, checkpoints not removed
                 for p in cks:
                     with contextlib.suppress(OSError):
                         p.unlink()
             with self._events_lock:
                 batch, self._events = self._events, []
             self.store.append_events(batch)
+            done = self._compact(at_least=self.options.compact_at)
+            if done:
+                self.store.append_events([{"time": now_iso(), "event": "compacted", **done}])
             self._last_flush = time.perf_counter()
         finally:
             self._in_flush = False
@@ -433,6 +458,13 @@ class Driver:
             raise KeyboardInterrupt
 
     # -- helpers ------------------------------------------------------------------------
+    def _compact(self, at_least: int) -> dict | None:
+        """Compact the small part files once there are ``at_least`` of them."""
+        if len(self.store.small_part_files()) < max(2, at_least):
+            return None
+        read, written = self.store.compact()
+        return {"files_read": read, "files_written": written} if read else None
+
     @contextlib.contextmanager
     def _signals(self):
         """TERM (batch systems send it before KILL) and INT stop the run, but not mid-flush."""

@@ -8,7 +8,8 @@ Layout::
       events.jsonl           append-only log: run, submitted, started, resumed, finished, …
       checkpoints/           in-flight strip states, one file per replica (workers write
                              them atomically; the driver removes them once the row is in)
-      lock                   pid + host of the driver that owns the store
+      lease/                 the driver's lease: numbered records (pid, host, expiry) and
+                             heartbeats; see :class:`Lease`
       merged/                output of ``sweepctl merge``
 
 Single writer: only the driver writes tables, events and campaign.json. Every file is
@@ -22,13 +23,16 @@ from __future__ import annotations
 import contextlib
 import json
 import os
+import re
 import signal
 import socket
 import subprocess
+import threading
 import time
 import uuid
 from collections.abc import Iterator
 from dataclasses import dataclass
+from datetime import UTC, datetime
 from functools import lru_cache
 from pathlib import Path
 
@@ -226,6 +230,22 @@ def code_version() -> dict[str, str]:
     }
 
 
+#: Part files smaller than this are compacted (bytes) ...
+COMPACT_SMALL_BYTES = 16 << 20
+#: ... into files of about this size.
+COMPACT_TARGET_BYTES = 128 << 20
+#: The driver compacts once this many small part files have accumulated
+#: (``sweepctl run --compact-at``): at one flush per 5 s, about every 5 minutes.
+COMPACT_AT = 64
+
+
+def _size(p: Path) -> int:
+    try:
+        return p.stat().st_size
+    except OSError:
+        return 0
+
+
 def _fsync_dir(path: Path) -> None:
     with contextlib.suppress(OSError):
         fd = os.open(path, os.O_RDONLY)
@@ -246,39 +266,6 @@ def atomic_write_bytes(path: Path, data: bytes) -> None:
     _fsync_dir(path.parent)
 
 
-def _try_flock(fd: int) -> bool | None:
-    """``True`` if the exclusive flock was taken, ``False`` if another process holds it,
-    ``None`` if the file system has no flock."""
-    import errno
-    import fcntl
-
-    try:
-        fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
-    except BlockingIOError:
-        return False
-    except OSError as exc:
-        if exc.errno in (errno.ENOLCK, errno.ENOSYS, errno.EINVAL, errno.EOPNOTSUPP):
-            return None
-        raise
-    return True
-
-
-def _same_file(fd: int, path: Path) -> bool:
-    try:
-        a, b = os.fstat(fd), os.stat(path)
-    except OSError:
-        return False
-    return (a.st_dev, a.st_ino) == (b.st_dev, b.st_ino)
-
-
-def _read_owner(fd: int) -> dict:
-    with contextlib.suppress(OSError, ValueError):
-        data = os.pread(fd, 4096, 0)
-        owner = json.loads(data) if data.strip() else {}
-        return owner if isinstance(owner, dict) else {}
-    return {}
-
-
 def _read_json(path: Path) -> dict:
     with contextlib.suppress(OSError, ValueError):
         d = json.loads(path.read_text())
@@ -296,6 +283,299 @@ def _pid_alive(pid: int) -> bool:
     return True
 
 
+# -------------------------------------------------------------------------- the lease
+
+#: How long a lease stays valid without a heartbeat (seconds) unless the driver says
+#: otherwise (``sweepctl run --lease-expiry``); the holder renews it every tenth of that.
+LEASE_EXPIRY_SECONDS = 600.0
+_GEN = re.compile(r"^g(\d{9})\.json$")
+
+
+def lease_expiry_default() -> float:
+    return LEASE_EXPIRY_SECONDS
+
+
+@dataclass(frozen=True)
+class LeaseState:
+    """The newest lease record in ``STORE/lease/`` and its last heartbeat.
+
+    ``renewed`` is the holder's wall clock (seconds since the epoch) at its last
+    heartbeat; ``expiry`` is how long the holder promised to renew within.
+    """
+
+    generation: int
+    token: str
+    pid: int | None
+    host: str | None
+    since: float
+    renewed: float
+    expiry: float
+    released: bool
+
+    def expires_in(self, now: float | None = None) -> float:
+        """Seconds until another driver may take over (negative: expired)."""
+        return self.renewed + self.expiry - (time.time() if now is None else now)
+
+    def dead_here(self) -> bool:
+        """Held by a process of this host that no longer exists."""
+        return (
+            self.host == socket.gethostname()
+            and isinstance(self.pid, int)
+            and self.pid != os.getpid()
+            and not _pid_alive(self.pid)
+        )
+
+    def free(self, now: float | None = None) -> bool:
+        """Whether a new driver may take over: released, expired, or its process is
+        known dead (same host)."""
+        return self.released or self.expires_in(now) < 0 or self.dead_here()
+
+    def to_json(self) -> dict:
+        return {
+            "generation": self.generation,
+            "pid": self.pid,
+            "host": self.host,
+            "since": _iso(self.since),
+            "last_heartbeat": _iso(self.renewed),
+            "expiry_seconds": self.expiry,
+            "released": self.released,
+            "expires_in_seconds": round(self.expires_in(), 1),
+        }
+
+
+def _iso(t: float) -> str:
+    return datetime.fromtimestamp(t, UTC).isoformat(timespec="seconds")
+
+
+def _generations(lease_dir: Path) -> list[int]:
+    try:
+        names = os.listdir(lease_dir)
+    except OSError:
+        return []
+    return sorted(int(m.group(1)) for n in names if (m := _GEN.match(n)))
+
+
+def _gen_file(lease_dir: Path, g: int, suffix: str = "json") -> Path:
+    return lease_dir / f"g{g:09d}.{suffix}"
+
+
+def read_lease(lease_dir: Path) -> LeaseState | None:
+    """The newest lease record (``None`` if no driver ever held one)."""
+    for _ in range(5):  # a record removed while reading: read the listing again
+        gens = _generations(lease_dir)
+        if not gens:
+            return None
+        g = gens[-1]
+        rec = _read_json(_gen_file(lease_dir, g))
+        if not rec:
+            continue
+        beat = _read_json(_gen_file(lease_dir, g, "beat"))
+        renewed = float(rec.get("since", 0.0))
+        if beat.get("token") == rec.get("token"):
+            renewed = max(renewed, float(beat.get("renewed", renewed)))
+        return LeaseState(
+            generation=g,
+            token=str(rec.get("token")),
+            pid=rec.get("pid") if isinstance(rec.get("pid"), int) else None,
+            host=rec.get("host"),
+            since=float(rec.get("since", 0.0)),
+            renewed=renewed,
+            expiry=float(rec.get("expiry", LEASE_EXPIRY_SECONDS)),
+            released=_gen_file(lease_dir, g, "end").exists(),
+        )
+    return None
+
+
+def _link_json(path: Path, record: dict) -> bool:
+    """Create ``path`` holding ``record``, complete or not at all; ``False`` if it exists.
+
+    The record is written to a temporary and hard-linked into place: ``link`` fails if
+    the name exists, atomically also on NFS, so of two drivers racing for one name
+    exactly one succeeds, and nobody ever sees a half-written record.
+    """
+    tmp = path.parent / f".{path.name}.tmp-{uuid.uuid4().hex[:8]}"
+    with open(tmp, "w") as fh:
+        fh.write(json.dumps(record))
+        fh.flush()
+        os.fsync(fh.fileno())
+    try:
+        os.link(tmp, path)
+    except FileExistsError:
+        return False
+    finally:
+        with contextlib.suppress(OSError):
+            tmp.unlink()
+    _fsync_dir(path.parent)
+    return True
+
+
+class Lease:
+    """The right to write a store, held by one driver and renewed by a heartbeat.
+
+    ``STORE/lease/`` holds numbered records ``g000000001.json``, … The newest one names
+    the holder (pid, host, a random token, the expiry it promises to renew within); the
+    holder's heartbeat thread rewrites ``gN.beat`` every tenth of the expiry, and on a
+    clean exit it writes ``gN.end``. A driver may take over when the newest lease is
+    released, has had no heartbeat for its expiry (on any host), or names a dead process
+    of the taker's own host. Taking over is creating record ``N+1`` with ``link``, which
+    exactly one contender wins. The holder stops writing as soon as record ``N+1``
+    exists or its own last renewal is older than the expiry, so a driver that was
+    merely frozen (a suspended job, a hung file server) never writes after a take-over.
+    Host clocks must agree to well within the expiry (NTP does).
+    """
+
+    def __init__(self, store: Store, expiry: float) -> None:
+        if not expiry > 0:
+            raise StoreError(f"lease expiry = {expiry!r}: must be a positive number of seconds")
+        self.store = store
+        self.dir = store.lease_dir
+        self.expiry = float(expiry)
+        self.interval = max(0.05, min(self.expiry / 10.0, 60.0))
+        self.token = uuid.uuid4().hex
+        self.generation: int | None = None
+        self.previous: LeaseState | None = None
+        self.lost: str | None = None
+        self._last_ok = 0.0
+        self._beats = 0
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+
+    # -- taking and giving back ---------------------------------------------------------
+    def acquire(self, wait: float = 0.0) -> None:
+        """Take the lease, waiting up to ``wait`` seconds for the holder to end."""
+        self.dir.mkdir(parents=True, exist_ok=True)
+        _refuse_legacy_lock(self.store)
+        deadline = time.monotonic() + max(0.0, wait)
+        while True:
+            st = read_lease(self.dir)
+            if st is None or st.free():
+                g = 1 if st is None else st.generation + 1
+                if os.environ.get("SWEEPCTL_FAULT") == "slow-takeover":
+                    time.sleep(0.5)  # fault-injection hook: widen the race window in tests
+                now = time.time()
+                record = {
+                    "token": self.token,
+                    "pid": os.getpid(),
+                    "host": socket.gethostname(),
+                    "since": now,
+                    "expiry": self.expiry,
+                    "took_over": None if st is None else st.generation,
+                }
+                if _link_json(_gen_file(self.dir, g), record):
+                    self.generation, self.previous = g, st
+                    self._last_ok = time.monotonic()
+                    self._beat()
+                    self._thread = threading.Thread(
+                        target=self._heartbeat, daemon=True, name="sweepctl-lease"
+                    )
+                    self._thread.start()
+                    return
+                continue  # another driver created it first: read again
+            if time.monotonic() >= deadline:
+                raise StoreLocked(self.store.locked_message(st))
+            time.sleep(min(1.0, self.interval, max(0.01, deadline - time.monotonic())))
+
+    def release(self, wrote: bool = True) -> None:
+        """Stop the heartbeat and mark the lease released (if it is still ours); a driver
+        that wrote nothing removes its record instead, leaving the store as it found it."""
+        self._stop.set()
+        if self._thread is not None:
+            self._thread.join(timeout=10)
+        g = self.generation
+        if g is not None and self.lost is None and self._still_newest():
+            with contextlib.suppress(OSError):
+                if wrote:
+                    _link_json(_gen_file(self.dir, g, "end"), {"token": self.token})
+                    self._prune_old()
+                else:  # the previous record (released, expired or dead) is newest again
+                    _gen_file(self.dir, g, "beat").unlink(missing_ok=True)
+                    _gen_file(self.dir, g).unlink()
+        self.generation = None
+
+    # -- holding ------------------------------------------------------------------------
+    def check(self) -> None:
+        """Raise :class:`StoreLocked` unless the lease is still ours and fresh."""
+        if self.generation is None:
+            return
+        if self.lost is None and time.monotonic() - self._last_ok > 0.8 * self.expiry:
+            self.lost = (
+                f"the lease was not renewed for {time.monotonic() - self._last_ok:.0f} s "
+                f"(expiry {self.expiry:g} s; is the file system responding?)"
+            )
+        if self.lost is None and not self._still_newest():
+            self.lost = "another driver took over the lease"
+        if self.lost is not None:
+            raise StoreLocked(
+                f"{self.store.root}: this driver no longer holds the store's lease: "
+                f"{self.lost}; it stops without writing more"
+            )
+
+    def _still_newest(self) -> bool:
+        g = self.generation
+        return g is not None and not _gen_file(self.dir, g + 1).exists()
+
+    def _beat(self) -> None:
+        self._beats += 1
+        data = {"token": self.token, "renewed": time.time(), "count": self._beats}
+        atomic_write_bytes(_gen_file(self.dir, self.generation, "beat"), json.dumps(data).encode())
+        self._last_ok = time.monotonic()
+
+    def _heartbeat(self) -> None:
+        while not self._stop.wait(self.interval):
+            if not self._still_newest():
+                self.lost = "another driver took over the lease"
+                return
+            with contextlib.suppress(OSError):  # a missed beat; check() notices a run of them
+                self._beat()
+
+    def _prune_old(self) -> None:
+        """Remove records older than the previous generation (kept for the record)."""
+        for g in _generations(self.dir):
+            if g < self.generation - 1:
+                for suf in ("json", "beat", "end"):
+                    with contextlib.suppress(OSError):
+                        _gen_file(self.dir, g, suf).unlink()
+
+
+def _refuse_legacy_lock(store: Store) -> None:
+    """An older sweepctl driver locks ``STORE/lock`` (flock and a pid + host record):
+    respect one that is running, forget one that is not."""
+    import fcntl
+
+    path = store.root / "lock"
+    if not path.exists():
+        return
+    rec = _read_json(path)
+    try:
+        fd = os.open(path, os.O_RDWR)
+    except OSError:
+        return
+    try:
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            held = False
+        except BlockingIOError:
+            held = True
+        except OSError:
+            held = False
+        pid = rec.get("pid")
+        live_here = (
+            rec.get("host") == socket.gethostname()
+            and isinstance(pid, int)
+            and pid != os.getpid()
+            and _pid_alive(pid)
+        )
+        if held or live_here:
+            raise StoreLocked(
+                f"{store.root} is in use by the driver with pid {pid} on host "
+                f"{rec.get('host')} (an older sweepctl, holding {path}); wait for it to finish"
+            )
+        with contextlib.suppress(OSError):
+            path.unlink()
+    finally:
+        os.close(fd)
+
+
 class Store:
     """A campaign store directory."""
 
@@ -305,10 +585,11 @@ class Store:
         self.replicas_dir = self.root / "replicas"
         self.checkpoints_dir = self.root / "checkpoints"
         self.events_file = self.root / "events.jsonl"
-        self.lock_file = self.root / "lock"
+        self.lease_dir = self.root / "lease"
         self.merged_dir = self.root / "merged"
         self._locked = False
-        self._lock_fd: int | None = None
+        self._lease: Lease | None = None
+        self._wrote = False
 
     # -- existence ------------------------------------------------------------------
     def exists(self) -> bool:
@@ -319,7 +600,7 @@ class Store:
         the lock, TLS certificates, scheduler files and batch logs are its own)."""
         if not self.root.exists():
             return []
-        own = {"lock", "lock.takeover", "tls", "batch-logs"}
+        own = {"lock", "lease", "tls", "batch-logs", "allocations"}
         return [
             p
             for p in self.root.iterdir()
@@ -353,142 +634,185 @@ class Store:
             raise StoreError(f"{self.campaign_file}: unreadable ({exc})") from None
 
     def write_campaign(self, campaign: dict) -> None:
+        self._guard()
         atomic_write_bytes(self.campaign_file, (json.dumps(campaign, indent=2) + "\n").encode())
 
-    # -- lock -----------------------------------------------------------------------
+    # -- lease ----------------------------------------------------------------------
     @contextlib.contextmanager
-    def locked(self) -> Iterator[None]:
-        """Own the store for the duration (a second driver is refused)."""
-        self.acquire_lock()
+    def locked(self, expiry: float | None = None, wait: float = 0.0) -> Iterator[Lease]:
+        """Hold the store's lease for the duration (see :class:`Lease`)."""
+        lease = self.acquire_lock(expiry=expiry, wait=wait)
         try:
-            yield
+            yield lease
         finally:
             self.release_lock()
 
-    def acquire_lock(self) -> dict | None:
-        """Take the store's lock; returns the dead previous owner's record, if any.
-
-        The lock is an exclusive ``flock`` on ``STORE/lock``, held for the driver's
-        lifetime: the kernel drops it when the process dies however it dies, so a crash
-        at any moment (also between creating the file and writing the owner's record)
-        leaves no lock behind, and two drivers can never both take over a dead one's
-        lock. Where the file system has no ``flock``, :meth:`_acquire_by_link` is the
-        fallback.
-        """
-        host = socket.gethostname()
-        me = {"pid": os.getpid(), "host": host, "since": time.strftime("%Y-%m-%dT%H:%M:%S%z")}
-        for _ in range(20):
-            fd = os.open(self.lock_file, os.O_RDWR | os.O_CREAT, 0o644)
-            try:
-                locked = _try_flock(fd)
-                if locked is None:  # no flock on this file system
-                    os.close(fd)
-                    return self._acquire_by_link(me)
-                if locked is False:
-                    raise StoreLocked(self._locked_message(_read_owner(fd)))
-                if not _same_file(fd, self.lock_file):
-                    os.close(fd)  # released and removed meanwhile: try the new file
-                    continue
-                previous = _read_owner(fd)
-                pid = previous.get("pid")
-                if previous.get("host") not in (None, host) or (
-                    isinstance(pid, int) and pid != os.getpid() and _pid_alive(pid)
-                ):
-                    # flock on a network file system may be local to one node, and a
-                    # driver of an older version holds none: never take over from another
-                    # host, or from a live process, on the flock's word alone
-                    raise StoreLocked(self._locked_message(previous))
-                os.ftruncate(fd, 0)
-                os.pwrite(fd, json.dumps(me).encode(), 0)
-                os.fsync(fd)
-            except BaseException:
-                with contextlib.suppress(OSError):
-                    os.close(fd)
-                raise
-            self._lock_fd = fd
-            self._locked = True
-            return previous or None
-        raise StoreLocked(f"could not take the lock {self.lock_file}")  # pragma: no cover
-
-    def _acquire_by_link(self, me: dict) -> dict | None:
-        """Lock without flock: the record is written to a temporary and hard-linked into
-        place (atomic, never empty); a dead owner on this host is taken over while holding
-        ``lock.takeover`` (``mkdir`` is atomic), so two drivers cannot both take over."""
-        tmp = self.root / f".lock.tmp-{uuid.uuid4().hex[:8]}"
-        tmp.write_text(json.dumps(me))
-        previous = None
-        try:
-            for _ in range(3):
-                try:
-                    os.link(tmp, self.lock_file)
-                except FileExistsError:
-                    other = _read_json(self.lock_file)
-                    pid = other.get("pid")
-                    dead = isinstance(pid, int) and not _pid_alive(pid)
-                    if other.get("host") != me["host"] or not dead:
-                        raise StoreLocked(self._locked_message(other)) from None
-                    guard = self.root / "lock.takeover"
-                    try:
-                        guard.mkdir()
-                    except FileExistsError:
-                        raise StoreLocked(
-                            f"another driver is taking over {self.lock_file}; try again, or "
-                            f"remove {guard} if no driver is starting"
-                        ) from None
-                    try:
-                        if _read_json(self.lock_file) == other:
-                            self.lock_file.unlink()
-                            previous = other
-                    finally:
-                        guard.rmdir()
-                    continue
-                self._locked = True
-                return previous
-        finally:
-            with contextlib.suppress(OSError):
-                tmp.unlink()
-        raise StoreLocked(f"could not take the lock {self.lock_file}")  # pragma: no cover
-
-    def _locked_message(self, other: dict) -> str:
-        pid, ohost = other.get("pid"), other.get("host")
-        return (
-            f"{self.root} is in use by the driver with pid {pid} on host {ohost} "
-            f"(since {other.get('since')}); wait for it to finish, or if that driver is dead "
-            f"on another host, remove {self.lock_file}"
-        )
+    def acquire_lock(self, expiry: float | None = None, wait: float = 0.0) -> Lease:
+        """Take the store's lease and start its heartbeat; :class:`StoreLocked` if another
+        driver holds it (after waiting up to ``wait`` seconds for it to end or expire)."""
+        lease = Lease(self, expiry if expiry is not None else lease_expiry_default())
+        lease.acquire(wait=wait)
+        self._lease = lease
+        self._locked = True
+        return lease
 
     def release_lock(self) -> None:
-        if not self._locked:
-            return
-        fd, self._lock_fd = self._lock_fd, None
-        # Remove the file while still holding the flock; a driver that opened it just
-        # before sees, after getting the flock, that the path now names another file.
-        with contextlib.suppress(OSError):
-            if fd is None or _same_file(fd, self.lock_file):
-                if fd is not None or _read_json(self.lock_file).get("pid") == os.getpid():
-                    self.lock_file.unlink()
-        if fd is not None:
-            with contextlib.suppress(OSError):
-                os.close(fd)
+        if self._lease is not None:
+            self._lease.release(wrote=self._wrote)
+        self._wrote = False
+        self._lease = None
         self._locked = False
 
-    # -- repairs after a kill (lock held) ------------------------------------------------
+    @property
+    def lease(self) -> Lease | None:
+        """The lease this process holds on the store, if any."""
+        return self._lease
+
+    def lease_state(self) -> LeaseState | None:
+        """Who holds (or last held) the lease, read without taking it."""
+        return read_lease(self.lease_dir)
+
+    def locked_message(self, st: LeaseState) -> str:
+        left = st.expires_in()
+        return (
+            f"{self.root} is in use by the driver with pid {st.pid} on host {st.host} "
+            f"(since {_iso(st.since)}, last heartbeat {_iso(st.renewed)}); wait for it to "
+            f"finish, or if it died without a clean-up, run again after its lease expires "
+            f"in {max(0.0, left):.0f} s (any host may then take over; "
+            f"`sweepctl run --lease-wait` waits for it)"
+        )
+
+    def _guard(self) -> None:
+        """Refuse to write once this process has lost the store's lease."""
+        if self._lease is not None:
+            self._lease.check()
+        self._wrote = True
+
+    # -- repairs after a kill (lease held) -----------------------------------------------
     def cleanup(self) -> list[Path]:
-        """Remove temporaries left by a killed writer; mend a torn last event line."""
+        """Remove temporaries left by a killed writer, finish an interrupted compaction,
+        mend a torn last event line."""
         removed = []
         for d in (self.root, self.replicas_dir, self.checkpoints_dir, self.merged_dir):
             if d.is_dir():
-                for p in d.rglob(".*.tmp-*"):
+                found = d.glob(".*.tmp-*") if d == self.root else d.rglob(".*.tmp-*")
+                for p in found:
                     with contextlib.suppress(OSError):
                         p.unlink()
                         removed.append(p)
+        removed += self._finish_compactions()
         if self.events_file.exists():
-            data = self.events_file.read_bytes()
-            if data and not data.endswith(b"\n"):
-                cut = data.rfind(b"\n") + 1
-                with open(self.events_file, "r+b") as fh:
-                    fh.truncate(cut)
+            with open(self.events_file, "r+b") as fh:
+                size = fh.seek(0, os.SEEK_END)
+                if size:
+                    fh.seek(max(0, size - (1 << 20)))
+                    tail = fh.read()
+                    if not tail.endswith(b"\n"):
+                        cut = tail.rfind(b"\n")
+                        fh.truncate(size - len(tail) + cut + 1 if cut >= 0 else 0)
         return removed
+
+    # -- compaction -------------------------------------------------------------------
+    def small_part_files(self) -> list[Path]:
+        return [p for p in self.part_files() if _size(p) < COMPACT_SMALL_BYTES]
+
+    def compact(self, target_bytes: int = COMPACT_TARGET_BYTES) -> tuple[int, int]:
+        """Rewrite the small part files as few large ones; returns (files read, written).
+
+        Each output holds its inputs' rows unchanged (same pinned schema, values copied
+        bit for bit, duplicates kept for the one reader to collapse) and names them in
+        its metadata. Steps: write a temporary, ``os.replace`` it into place, delete the
+        inputs. A kill before the replace leaves a temporary (removed later); a kill
+        after it leaves inputs whose rows are also in the output, which the reader
+        counts once and the next :meth:`cleanup` deletes.
+        """
+        self._finish_compactions()
+        groups: list[list[Path]] = [[]]
+        size = 0
+        for p in self.small_part_files():
+            if groups[-1] and size + _size(p) > target_bytes:
+                groups.append([])
+                size = 0
+            groups[-1].append(p)
+            size += _size(p)
+        read = written = 0
+        for group in groups:
+            if len(group) < 2:
+                continue
+            self._compact_group(group)
+            read += len(group)
+            written += 1
+        return read, written
+
+    def _compact_group(self, group: list[Path]) -> Path:
+        fault = os.environ.get("SWEEPCTL_FAULT", "")
+        tables, meta = [], dict(REPLICA_SCHEMA.metadata or {})
+        for p in group:
+            tables.append(_read_part(p, None, REPLICA_SCHEMA).replace_schema_metadata(None))
+            camp = (pq.read_schema(p).metadata or {}).get(b"sweepctl.campaign")
+            if camp and b"sweepctl.campaign" not in meta:
+                meta[b"sweepctl.campaign"] = camp
+        meta[b"sweepctl.compacted_from"] = json.dumps([p.name for p in group]).encode()
+        table = pa.concat_tables(tables).replace_schema_metadata(meta)
+        # sorts where its first input did, so the reader's file order barely changes
+        stem = group[0].stem.split("~", 1)[0]
+        final = self.replicas_dir / f"{stem}~c{uuid.uuid4().hex[:10]}.parquet"
+        tmp = self.replicas_dir / f".{final.name}.tmp-{uuid.uuid4().hex[:8]}"
+        pq.write_table(table, tmp, compression="zstd")
+        with open(tmp, "rb") as fh:
+            os.fsync(fh.fileno())
+        if fault == "kill-compact-written":
+            os.kill(os.getpid(), signal.SIGKILL)  # fault-injection hook for tests
+        try:
+            self._guard()
+        except BaseException:
+            tmp.unlink(missing_ok=True)
+            raise
+        os.replace(tmp, final)
+        _fsync_dir(self.replicas_dir)
+        if fault == "kill-compact-replaced":
+            os.kill(os.getpid(), signal.SIGKILL)
+        for i, p in enumerate(group):
+            p.unlink(missing_ok=True)
+            if fault == "kill-compact-deleting" and i == 0:
+                os.kill(os.getpid(), signal.SIGKILL)
+        _fsync_dir(self.replicas_dir)
+        return final
+
+    def _finish_compactions(self) -> list[Path]:
+        """Delete inputs of completed compactions that a kill left behind."""
+        removed = []
+        names = {p.name for p in self.part_files()}
+        for p in self.part_files():
+            if "~c" not in p.name:
+                continue
+            try:
+                meta = pq.read_schema(p).metadata or {}
+                inputs = json.loads(meta.get(b"sweepctl.compacted_from", b"[]"))
+            except (OSError, ValueError, pa.ArrowException):
+                continue
+            for name in inputs:
+                if name in names and name != p.name:
+                    self._guard()
+                    with contextlib.suppress(OSError):
+                        (self.replicas_dir / name).unlink()
+                        removed.append(self.replicas_dir / name)
+        return removed
+
+    def remove_stored_checkpoints(self, stored: set[tuple[str, int]]) -> int:
+        """Delete checkpoints of replicas whose rows are stored (``(point short name,
+        replica)``): left behind when a driver died between the two steps."""
+        n = 0
+        if not self.checkpoints_dir.is_dir():
+            return 0
+        for p in self.checkpoints_dir.glob("*/r*.ckpt"):
+            with contextlib.suppress(ValueError):
+                if (p.parent.name, int(p.stem[1:])) in stored:
+                    self._guard()
+                    with contextlib.suppress(OSError):
+                        p.unlink()
+                        n += 1
+        return n
 
     # -- replica rows ---------------------------------------------------------------
     def part_files(self) -> list[Path]:
@@ -511,6 +835,11 @@ class Store:
             os.fsync(fh.fileno())
         if os.environ.get("SWEEPCTL_FAULT") == "kill-while-writing":
             os.kill(os.getpid(), signal.SIGKILL)  # fault-injection hook for tests
+        try:
+            self._guard()
+        except BaseException:
+            tmp.unlink(missing_ok=True)
+            raise
         os.replace(tmp, final)
         _fsync_dir(self.replicas_dir)
         return final
@@ -579,11 +908,46 @@ class Store:
     def append_events(self, events: list[dict]) -> None:
         if not events:
             return
+        self._guard()
         lines = "".join(json.dumps(e, sort_keys=True, default=str) + "\n" for e in events)
         with open(self.events_file, "a", encoding="utf-8") as fh:
             fh.write(lines)
             fh.flush()
             os.fsync(fh.fileno())
+
+    def tail_events(self, max_bytes: int = 1 << 20) -> list[dict]:
+        """The events in the last ``max_bytes`` of the log (complete lines only)."""
+        try:
+            with open(self.events_file, "rb") as fh:
+                size = fh.seek(0, os.SEEK_END)
+                fh.seek(max(0, size - max_bytes))
+                data = fh.read()
+        except OSError:
+            return []
+        lines = data.split(b"\n")
+        if len(data) < size:
+            lines = lines[1:]  # the first line was cut
+        out = []
+        for line in lines:
+            with contextlib.suppress(ValueError):
+                if line.strip():
+                    out.append(json.loads(line))
+        return out
+
+    def last_event(self) -> dict | None:
+        ev = self.tail_events(1 << 16)
+        return ev[-1] if ev else None
+
+    def last_event_time(self, kind: str):
+        """When the last event of ``kind`` in the log's last megabyte happened (a pandas
+        UTC timestamp), or ``None``."""
+        import pandas as pd
+
+        for e in reversed(self.tail_events()):
+            if e.get("event") == kind and e.get("time"):
+                with contextlib.suppress(ValueError, TypeError):
+                    return pd.Timestamp(e["time"]).tz_convert("UTC")
+        return None
 
     def read_events(self) -> list[dict]:
         if not self.events_file.exists():

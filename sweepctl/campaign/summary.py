@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from datetime import UTC, datetime
 
 import numpy as np
 import pandas as pd
@@ -13,7 +14,15 @@ from sweepctl.campaign.progress import build_progress
 from sweepctl.campaign.recipe import Recipe
 from sweepctl.campaign.store import Store
 
-__all__ = ["MERGED_COLUMNS", "merge_table", "status_rows", "store_recipe"]
+__all__ = [
+    "MERGED_COLUMNS",
+    "compact_store",
+    "driver_state",
+    "merge_table",
+    "observed_eta",
+    "status_rows",
+    "store_recipe",
+]
 
 MERGED_COLUMNS = [
     "p_block",
@@ -91,11 +100,87 @@ def merge_table(store: Store) -> pd.DataFrame:
     return res.sort_values(_SORT, kind="stable").reset_index(drop=True)
 
 
+def driver_state(store: Store) -> dict:
+    """Whether a driver holds the store's lease now, and who held it last.
+
+    ``state``: ``running`` (a lease renewed within its expiry), ``stopped`` (released
+    by a clean exit), ``lost`` (expired, or its process is gone: the driver died
+    without a clean-up; any driver may take over), ``never`` (no driver ever ran).
+    """
+    st = store.lease_state()
+    if st is None:
+        return {"state": "never"}
+    state = "stopped" if st.released else ("lost" if st.free() else "running")
+    out = {"state": state, **st.to_json()}
+    if state != "running":  # a countdown only means something for a live lease
+        out.pop("expires_in_seconds")
+    return out
+
+
+def _work(point, layers: int, warmup: int, strips: int, cost: CostModel | None) -> float:
+    """One replica's work in comparable units: the cost model's CPU seconds, or without
+    a model strip-layers × N² (one layer updates a 2N × N frame)."""
+    if cost is not None:
+        return cost.replica_seconds(point, layers, warmup, strips)
+    return float((layers + warmup) * strips * point.width**2)
+
+
+def observed_eta(store: Store, progress, frozen: Frozen, cost: CostModel | None) -> dict:
+    """Wall-clock seconds left for the current rounds at the throughput observed.
+
+    Throughput = the work of the replicas finished since the last run started, over the
+    wall time from that start to the last of them (all stored replicas, from the first
+    start to the last finish, if the last run has not finished two yet). This is what the
+    cluster actually delivered, whatever the workers' number or speed.
+    """
+    cols = ["point_key", "layers", "warmup", "strips", "started", "finished"]
+    t = store.read_replicas(columns=cols)
+    if t.num_rows == 0:
+        return {"eta_seconds": None, "throughput_basis": "no replica stored yet"}
+    df = t.to_pandas()
+    pts = {pp.point.key: pp.point for pp in progress.values()}
+    df = df[df["point_key"].isin(pts)]
+    if df.empty:
+        return {"eta_seconds": None, "throughput_basis": "no replica of the recipe's points"}
+    df = df.assign(
+        work=[
+            _work(pts[k], int(a), int(b), int(c), cost)
+            for k, a, b, c in zip(df.point_key, df.layers, df.warmup, df.strips, strict=True)
+        ]
+    )
+    start = store.last_event_time("run-start")
+    recent = df[df["finished"] >= start] if start is not None else df.iloc[0:0]
+    if len(recent) >= 2:
+        span = (recent["finished"].max() - start).total_seconds()
+        basis = f"{len(recent)} replicas since the last run started"
+        used = recent
+    else:
+        span = (df["finished"].max() - df["started"].min()).total_seconds()
+        basis = f"all {len(df)} stored replicas"
+        used = df
+    left = sum(
+        len(pp.missing()) * _work(pp.point, pp.layers, pp.warmup, frozen.strips, cost)
+        for pp in progress.values()
+        if not pp.finished
+    )
+    if span <= 0:
+        return {"eta_seconds": None, "throughput_basis": basis}
+    rate = float(used["work"].sum()) / span
+    return {"eta_seconds": left / rate if rate > 0 else None, "throughput_basis": basis}
+
+
 def status_rows(store: Store, cost: CostModel | None) -> tuple[list[dict], dict]:
-    """Per-point progress and totals."""
+    """Per-point progress and totals (with the driver's lease, the last event and an
+    ETA from observed throughput).
+
+    A point with stored rows is ``running`` only while a driver holds the lease;
+    otherwise it is ``partial`` (rows stored, more to compute, nobody computing).
+    """
     campaign, recipe, frozen = store_recipe(store)
     rows = store.read_replicas(columns=["point_key", "replica", "gamma_strips"])
     progress = build_progress(recipe, frozen, rows)
+    driver = driver_state(store)
+    live = driver["state"] == "running"
     out = []
     remaining = 0.0
     for pp in sorted(progress.values(), key=lambda q: q.point):
@@ -112,7 +197,11 @@ def status_rows(store: Store, cost: CostModel | None) -> tuple[list[dict], dict]
         state = (
             "done"
             if pp.finished and pp.reached
-            else ("capped" if pp.capped else ("running" if pp.done else "pending"))
+            else (
+                "capped"
+                if pp.capped
+                else ("pending" if not pp.done else ("running" if live else "partial"))
+            )
         )
         out.append(
             {
@@ -138,9 +227,53 @@ def status_rows(store: Store, cost: CostModel | None) -> tuple[list[dict], dict]
         "done": sum(r["state"] == "done" for r in out),
         "capped": sum(r["state"] == "capped" for r in out),
         "running": sum(r["state"] == "running" for r in out),
+        "partial": sum(r["state"] == "partial" for r in out),
         "pending": sum(r["state"] == "pending" for r in out),
         "replicas": sum(r["replicas"] for r in out),
         "remaining_cpu_hours": remaining / 3600.0 if cost is not None else None,
         "note": "remaining cost counts the current round; a point may need further rounds",
+        "driver": driver,
+        "last_event": store.last_event(),
+        **observed_eta(store, progress, frozen, cost),
     }
     return out, totals
+
+
+def compact_store(store: Store, wait: float = 0.0) -> dict:
+    """``sweepctl compact``: under the lease, finish interrupted compactions, merge the
+    small part files, and remove checkpoints of replicas whose rows are stored."""
+    _, recipe, _ = store_recipe(store)
+    before = len(store.part_files())
+    with store.locked(wait=wait):
+        store.cleanup()
+        rows = store.read_replicas(columns=["point_key", "replica"])
+        short = {p.key: p.short for p in recipe.points()}
+        stored = {
+            (short[k], int(r))
+            for k, r in zip(
+                rows.column("point_key").to_pylist(),
+                rows.column("replica").to_pylist(),
+                strict=True,
+            )
+            if k in short
+        }
+        removed = store.remove_stored_checkpoints(stored)
+        read, written = store.compact()
+        store.append_events(
+            [
+                {
+                    "time": datetime.now(UTC).isoformat(timespec="milliseconds"),
+                    "event": "compacted",
+                    "files_read": read,
+                    "files_written": written,
+                    "removed_checkpoints": removed,
+                }
+            ]
+        )
+    return {
+        "files_before": before,
+        "files_after": len(store.part_files()),
+        "files_read": read,
+        "files_written": written,
+        "removed_checkpoints": removed,
+    }

@@ -8,12 +8,13 @@ from sweepctl.cluster.batch import (
     make_cluster,
     make_security,
     parse_duration,
-    prune_dead_jobs,
 )
+from sweepctl.cluster.watch import job_end_state, prune_dead_jobs
 
 __all__ = [
     "ProfileError",
     "ensure_certificates",
+    "job_end_state",
     "job_script",
     "load_profile",
     "make_cluster",

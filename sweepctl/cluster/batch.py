@@ -28,11 +28,12 @@ import os
 import re
 import subprocess
 import tomllib
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from importlib import resources
 from pathlib import Path
 from typing import Any
 
+from sweepctl.cluster.watch import WATCHDOG_SECONDS, prune_dead_jobs
 from sweepctl.errors import SweepctlError
 
 __all__ = [
@@ -67,6 +68,7 @@ _KEYS: dict[str, type | tuple] = {
     "local_directory": str,
     "scheduler_host": str,
     "replica_fraction": float,
+    "stop_margin": str,
 }
 
 
@@ -116,6 +118,7 @@ class Profile:
     local_directory: str | None = None
     scheduler_host: str | None = None
     replica_fraction: float = 0.1
+    stop_margin: str | None = None  # self-continuing allocations stop this long before
 
     @property
     def walltime_seconds(self) -> int:
@@ -175,7 +178,7 @@ def _check(src: str, name: str, body: dict) -> dict:
             raise ProfileError(f"{where} = {v!r}: must be at least 0")
         if k == "system" and v not in SYSTEMS:
             raise ProfileError(f"{where} = {v!r}: must be one of {', '.join(SYSTEMS)}")
-        if k in ("walltime", "lifetime_margin", "lifetime_stagger") and not (
+        if k in ("walltime", "lifetime_margin", "lifetime_stagger", "stop_margin") and not (
             k == "lifetime_margin" and v == "off"
         ):
             parse_duration(v, where)
@@ -229,6 +232,46 @@ def load_profile(
     if merged.get("min_jobs", 0) > merged.get("max_jobs", 1):
         raise ProfileError(f"{src}: profiles.{name}.min_jobs exceeds max_jobs; lower min_jobs")
     return Profile(name=name, **{k: v for k, v in merged.items() if k in _KEYS})
+
+
+@dataclass
+class ProfileRow:
+    name: str
+    system: str
+    walltime: str
+    cores: int
+    max_jobs: int
+    source: str
+
+
+def list_profiles(profiles_file: str | Path | None = None) -> tuple[Path | None, list[ProfileRow]]:
+    """Every profile of the user's file (resolved), then the bare system names."""
+    path = user_profiles_path(profiles_file)
+    names: list[str] = []
+    if path is not None:
+        try:
+            names = list(tomllib.loads(path.read_text()).get("profiles", {}))
+        except FileNotFoundError:
+            raise ProfileError(
+                f"{path}: no such profile file; see deploy/clusters.example.toml"
+            ) from None
+        except tomllib.TOMLDecodeError as exc:
+            raise ProfileError(f"{path}: {exc}; fix the TOML syntax") from None
+    rows = []
+    for n in [*names, *[s for s in SYSTEMS if s not in names]]:
+        p = load_profile(n, path)
+        src = str(path) if n in names else "packaged defaults"
+        rows.append(ProfileRow(n, p.system, p.walltime, p.cores, p.max_jobs, src))
+    return path, rows
+
+
+def describe_profile(p: Profile) -> list[tuple[str, str]]:
+    """A resolved profile as (setting, value) lines, with the derived worker lifetime."""
+    out = [(f.name, repr(getattr(p, f.name))) for f in fields(p)]
+    life = p.lifetime_seconds
+    out.append(("worker lifetime", "until the walltime" if life is None else f"{life} s"))
+    out.append(("replica seconds", f"{p.replica_seconds():.0f} (suggested replica duration)"))
+    return out
 
 
 def _job_kwargs(p: Profile) -> dict:
@@ -382,13 +425,16 @@ def make_security(store_root: Path):
     )
 
 
-def make_cluster(p: Profile, store_root: Path):
-    """Start a dask-jobqueue cluster for profile ``p`` (TLS, adaptive between min and max jobs)."""
+def make_cluster(p: Profile, store_root: Path, dashboard: str | None = None):
+    """Start a dask-jobqueue cluster for profile ``p`` (TLS, adaptive between min and max
+    jobs); ``dashboard``: ``HOST:PORT`` for the scheduler's dashboard (off by default)."""
     cls, _ = _classes(p.system)
     kw = _job_kwargs(p)
     kw["security"] = make_security(store_root)
     kw["protocol"] = "tls://"
-    sched = {"dashboard_address": None}
+    # The scheduler always serves HTTP (health routes, the dashboard if bokeh is
+    # installed); without --dashboard keep it on a free loopback port, not 8787.
+    sched = {"dashboard_address": dashboard or "127.0.0.1:0"}
     if p.scheduler_host:
         sched["host"] = p.scheduler_host
     kw["scheduler_options"] = sched
@@ -396,59 +442,6 @@ def make_cluster(p: Profile, store_root: Path):
     cluster = cls(**kw)
     # for the driver's watchdog, which must not import this layer
     cluster.sweepctl_prune = lambda: prune_dead_jobs(cluster, p.system)
+    cluster.sweepctl_poll_seconds = WATCHDOG_SECONDS
     cluster.adapt(minimum_jobs=p.min_jobs, maximum_jobs=p.max_jobs)
     return cluster
-
-
-# -------------------------------------------------------------------------- watchdog
-
-_STATUS = {
-    "slurm": lambda j: ["squeue", "-h", "-j", j, "-o", "%T"],
-    "pbs": lambda j: ["qstat", j],
-    "sge": lambda j: ["qstat", "-j", j],
-    "lsf": lambda j: ["bjobs", "-noheader", j],
-}
-_ENDED = (
-    "COMPLETED",
-    "CANCELLED",
-    "FAILED",
-    "TIMEOUT",
-    "PREEMPTED",
-    "NODE_FAIL",
-    "BOOT_FAIL",
-    "OUT_OF_MEMORY",
-    "DEADLINE",
-    "DONE",
-    "EXIT",
-)
-
-
-def job_alive(system: str, job_id: str) -> bool:
-    """Whether the batch system still knows the job (queued or running)."""
-    try:
-        proc = subprocess.run(
-            _STATUS[system](str(job_id)), capture_output=True, text=True, timeout=30
-        )
-    except (OSError, subprocess.SubprocessError):
-        return True  # cannot tell: keep it
-    out = proc.stdout.strip()
-    if proc.returncode != 0 or not out:
-        return False
-    return not any(state in out.split() for state in _ENDED)
-
-
-def prune_dead_jobs(cluster, system: str) -> list[str]:
-    """Forget worker jobs the batch system has ended (scancel, walltime, preemption).
-
-    dask-jobqueue does not notice jobs that end behind its back, so adaptive scaling
-    would keep counting them and never ask for replacements; forgetting them lets it
-    submit new jobs. Returns the job ids dropped.
-    """
-    dropped = []
-    for name, job in list(getattr(cluster, "workers", {}).items()):
-        jid = getattr(job, "job_id", None)
-        if jid and not job_alive(system, jid):
-            cluster.worker_spec.pop(name, None)
-            cluster.workers.pop(name, None)
-            dropped.append(str(jid))
-    return dropped

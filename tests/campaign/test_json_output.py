@@ -83,3 +83,23 @@ def test_plan_says_where_it_keeps_the_calibration_it_measured(tmp_path):
     assert proc.returncode == 0, proc.stderr
     (saved,) = (cache / "sweepctl").glob("calibration-*.json")
     assert f"saved to {saved}" in proc.stdout
+
+
+def test_the_store_is_an_argument_like_everywhere_else(reference_store, tmp_path):
+    import pandas as pd
+
+    from tests.campaign.helpers import merged
+
+    recipe = write_recipe(tmp_path / "r.toml")
+    store = tmp_path / "store"
+    proc = cli("run", recipe, store, "--workers", "2")
+    assert proc.returncode == 0, proc.stderr
+    pd.testing.assert_frame_equal(merged(store), merged(reference_store), check_exact=True)
+    preview = strict(cli("plan", recipe, store, "--json").stdout)
+    assert preview["store"]["replicas_to_submit"] == 0
+    # given twice, differently: one line, nothing made
+    proc = cli("run", recipe, tmp_path / "a", "--store", tmp_path / "b")
+    assert proc.returncode == 2 and "give the store once" in proc.stderr
+    assert not (tmp_path / "a").exists() and not (tmp_path / "b").exists()
+    proc = cli("run", recipe)
+    assert proc.returncode == 2 and "STORE: missing" in proc.stderr
