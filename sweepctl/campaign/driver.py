@@ -384,6 +384,8 @@ class Driver:
         if (
             len(self._rows) >= self.options.flush_rows
             or time.perf_counter() - self._last_flush >= self.options.flush_seconds
+            # fault-injection hook for tests: every row is a batch flush, however fast the run
+            or os.environ.get("SWEEPCTL_FAULT") == "signal-in-flush"
         ):
             self.flush()
         self._say_progress()

@@ -132,9 +132,10 @@ def test_checkpointed_replica_resumes_bit_identically(tmp_path, launched):
     procs, stores = launched
     over = {
         "axes": {"widths": [8], "couplings": [0.1]},
-        "precision": {"target": 0.5, "max_layers": 31_000},
-        # one replica of 52 strips (≥ 51 strip values): it alone finishes the point
-        "replica": {"layers": 31_000, "strips": 52, "initial": 1, "checkpoint_seconds": 0.5},
+        "precision": {"target": 0.5, "max_layers": 312_000},
+        # one replica of 52 strips (≥ 51 strip values): it alone finishes the point; ~15 s on
+        # an idle core, so the kill below lands long before it ends however fast the machine
+        "replica": {"layers": 312_000, "strips": 52, "initial": 1, "checkpoint_seconds": 0.5},
     }
     recipe = write_recipe(tmp_path / "recipe.toml", over)
     store = tmp_path / "store"

@@ -64,7 +64,7 @@ def test_the_same_replica_with_different_numbers_is_refused(reference_store, tmp
 def test_a_signal_inside_the_flush_writes_no_row_twice(tmp_path):
     # Fault injection: the driver sends itself SIGTERM right after a part file is in place
     # and before its checkpoints are removed and the buffer cleared (a batch flush, not
-    # the final one: the campaign runs longer than one 5-second flush interval).
+    # the final one: under this fault the driver flushes after every finished replica).
     from tests.campaign.test_faults import FAULT
 
     recipe = write_recipe(tmp_path / "recipe.toml", {**FAULT, "axes": {"widths": [2, 3]}})
