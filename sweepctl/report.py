@@ -282,6 +282,8 @@ def outcome_summary(o: Outcome) -> dict:
         resamples_failed=stat.failed,
         at_bound=list(best.at_bound),
         ambiguous=o.ambiguous,
+        branches_disagree=o.branches_disagree,
+        disagreeing_forms=[_attempt(r) for r in o.disagreeing_forms()],
         branches=[
             {
                 "nu": _num(b.fit.values()["nu"]),
@@ -422,7 +424,7 @@ def words(o: Outcome) -> list[str]:
     )
     if len(o.branches) > 1:
         nus = ", ".join(f"{br.fit.values()['nu']:.3f}" for br in o.branches)
-        if o.ambiguous:
+        if o.branches_disagree:
             out.append(
                 f"AMBIGUOUS: the form has {len(o.branches)} acceptable branches with ν = {nus} "
                 "whose intervals do not overlap; the data cannot decide between them, so the "
@@ -433,6 +435,14 @@ def words(o: Outcome) -> list[str]:
                 f"The form has {len(o.branches)} acceptable branches (ν = {nus}); their "
                 "intervals overlap, and the headline interval covers all of them."
             )
+    for r in o.disagreeing_forms():
+        lo, hi = r.nu_ci()
+        out.append(
+            f"AMBIGUOUS: {r.model.describe()} is also stable (N ≥ {r.n_min}, p = "
+            f"{r.fit.p_value:.3f}) and gives ν = {r.fit.values()['nu']:.3f} [{lo:.3f}, "
+            f"{hi:.3f}] (linearised), outside the headline interval; the data cannot decide "
+            "between the forms."
+        )
     lo, hi = o.model_spread("nu")
     slo, shi = o.interval("nu")
     if len(o.stable_forms) > 1:
@@ -489,6 +499,8 @@ def write_report(
             if o.acceptable:
                 blocks.append(("table", (HEADLINE_HEAD, headline_rows(o))))
                 blocks.append(("table", (BRANCH_HEAD, branch_rows(o))))
+                if len(o.stable_forms) > 1:
+                    blocks.append(("table", (ATTEMPT_HEAD, attempt_rows(o.stable_forms, o.choice))))
                 if o.best.at_bound:
                     blocks.append(
                         (

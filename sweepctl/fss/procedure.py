@@ -16,12 +16,13 @@ Steps (numpy/scipy only; the caller passes a ``mapper`` to spread resampling):
 3. **Intervals.**  ``resamples`` (default 1000: ≈ 25 draws in each 2.5 % tail) resampled
    data sets are refitted from every branch's optimum (:func:`branch_intervals`); the
    headline interval of each quantity is the hull of the lowest-χ² refits' percentile
-   interval and of every branch's own interval.  The data are **ambiguous** when two
-   branches' ν intervals do not overlap.
+   interval and of every branch's own interval.
 4. **Model choice.**  Every power-law form with a stable window and at most
    :data:`SPREAD_EXTRA_PARAMS` more parameters than the choice gives its acceptable
    minima there; their range of ν and Γ_c is the model-choice spread, reported beside the
-   statistical interval.
+   statistical interval.  The data are **ambiguous** when two branches' ν intervals do
+   not overlap, or when a stable form's (linearised) ν interval misses the headline
+   interval: both are listed, so a reader sees the alternatives.
 5. **Correction sensitivity.**  When the data cannot fit y — the choice has no free y, y
    ended on a bound, or its interval is wider than :data:`Y_UNRESOLVED_WIDTH` or reaches
    above ``Y_DESIGN[1]`` — the chosen orders (with an irrelevant field) are refitted with y
@@ -52,7 +53,7 @@ from sweepctl.fss.fit import (
     explore,
 )
 from sweepctl.fss.model import Orders, ScalingModel
-from sweepctl.fss.scan import P_ACCEPT, ScanRow, candidate_models, stable_windows
+from sweepctl.fss.scan import P_ACCEPT, Z95, ScanRow, candidate_models, stable_windows
 
 #: largest orders of the default scan (wide enough for φ⁴ terms, a φ²ψ₁ cross term and
 #: nonlinear fields)
@@ -112,12 +113,38 @@ class Outcome:
         return self.branches[0].fit if self.branches else None
 
     @property
-    def ambiguous(self) -> bool:
+    def branches_disagree(self) -> bool:
         """Two acceptable branches whose ν intervals do not overlap."""
         cis = [b.cis.bounds["nu"] for b in self.branches if b.cis is not None]
         return any(
             max(a[0], b[0]) > min(a[1], b[1]) for i, a in enumerate(cis) for b in cis[i + 1 :]
         )
+
+    def disagreeing_forms(self) -> list[ScanRow]:
+        """Stable forms none of whose acceptable minima has a (linearised) ν interval
+        overlapping the headline interval: the choice of form moves ν."""
+        lo, hi = self.interval("nu")
+        out = []
+        for r in self.stable_forms:
+            if r is self.choice:
+                continue
+            cis = [
+                (
+                    f.values()["nu"] - Z95 * f.linear_error("nu"),
+                    f.values()["nu"] + Z95 * f.linear_error("nu"),
+                )
+                for f in (r.minima or [r.fit])
+                if _acceptable(f)
+            ]
+            if cis and not any(max(a, lo) <= min(b, hi) for a, b in cis):
+                out.append(r)
+        return out
+
+    @property
+    def ambiguous(self) -> bool:
+        """The data cannot decide ν: branches of the chosen form disagree, or another
+        stable form disagrees with the headline interval."""
+        return self.acceptable and (self.branches_disagree or bool(self.disagreeing_forms()))
 
     def interval(self, q: str) -> tuple[float, float]:
         """Headline interval of ``q``: the hull of the lowest-χ² refits' interval and of
