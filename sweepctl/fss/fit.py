@@ -562,7 +562,7 @@ def explore(
     lo, hi = _bounds(model, d)
     budget = EXPLORE_NFEV if starts is None else POLISH_NFEV
     if starts is None:
-        starts = [*_grid_starts(model, d), *screened_starts(model, d, per_bin)]
+        starts = [*grid_starts(model, d), *screened_starts(model, d, per_bin)]
     # a χ² this far above the dof is hopeless (p < 1e-4 even with 16-strip errors, [S2])
     reach = d.size - model.n_params + 10.0 * math.sqrt(2.0 * (d.size - model.n_params)) + 20.0
     found: list[Fit] = []
@@ -583,7 +583,9 @@ def explore(
     return minima
 
 
-def _grid_starts(model: ScalingModel, data: ScalingData) -> list[np.ndarray]:
+def grid_starts(model: ScalingModel, data: ScalingData) -> list[np.ndarray]:
+    """The fixed grid of starts: ν ∈ {1.5, 2.5, 4}, y ∈ {−0.5, −2}, x_c at the weighted
+    centre, other parameters 0 (a local search; :func:`explore` adds the global design)."""
     names = model.nonlinear_names()
     centre = float(np.average(data.x, weights=1 / data.Gamma_err**2))
     grids = {"nu": [1.5, 2.5, 4.0], "y": [-0.5, -2.0], "x_c": [centre]}
