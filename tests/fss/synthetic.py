@@ -108,7 +108,7 @@ def strip_run(seed: int, n_strips: int, resamples: int, compare: bool = False) -
     return out
 
 
-def general_run(seed: int, resamples: int = 200) -> tuple:
+def general_run(seed: int, resamples: int = 99) -> tuple:
     """Fit of :data:`GENERAL` to ``make(1000 + seed)`` and its resampled intervals (for the
     exact-σ coverage check; a top-level function, for process pools)."""
     data = make(1000 + seed)
