@@ -54,6 +54,7 @@ def test_clean_network_nu_in_published_band(tmp_path):
     proc = cli("fit", store, "--json", chosen)
     assert proc.returncode == 0, proc.stdout + proc.stderr
     res = json.loads(chosen.read_text())
+    print(proc.stdout)
     assert res["acceptable"] and res["p_value"] >= 0.1, res  # [M5]: only p ≥ 0.1
     assert res["nu_ci"][0] <= res["nu"] <= res["nu_ci"][1]
     # The band is this campaign's own error budget, as the procedure reports it: the
