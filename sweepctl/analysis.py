@@ -8,6 +8,8 @@ from __future__ import annotations
 
 import contextlib
 import json
+import os
+import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -15,11 +17,12 @@ from pathlib import Path
 import pandas as pd
 
 from sweepctl.errors import SweepctlError
+from sweepctl.fss import procedure
 from sweepctl.fss.data import Slice, choose_slice, read_points, select, slices
-from sweepctl.fss.fit import Fit, FitError, Intervals, ScalingData, fit, resampled_intervals
-from sweepctl.fss.model import Orders, ScalingModel
+from sweepctl.fss.fit import FitError, ScalingData
+from sweepctl.fss.model import Orders
+from sweepctl.fss.procedure import DEFAULT_MAX_ORDERS, DEFAULT_RESAMPLES, Outcome
 from sweepctl.fss.regularisation import epsilon_check
-from sweepctl.fss.scan import ScanRow, scan, stable_choice
 
 Progress = Callable[[str, int, int], None]
 
@@ -30,20 +33,22 @@ class AnalysisError(SweepctlError):
 
 @dataclass
 class FitRequest:
-    orders: Orders = field(default_factory=Orders)
+    #: one form to fit; ``None``: the full procedure (scan → stable choice → refit)
+    orders: Orders | None = None
     n_min: int | None = None
     symmetric: bool | None = None  # None: symmetric when p_block = p_open
     correction: str = "power"
     disorder: tuple[float, float] | None = None
     epsilon: float | None = None
-    resamples: int = 200
+    resamples: int = DEFAULT_RESAMPLES
     seed: int = 0
     level: float = 0.95
-    auto_orders: bool = False  # report: take the scan's stable choice per slice
+    max_orders: Orders = field(default_factory=lambda: DEFAULT_MAX_ORDERS)
 
 
-#: largest orders the report's automatic scan tries
-REPORT_MAX_ORDERS = Orders(4, 1, 3, 1)
+#: the automatic choice runs the resampling in this process unless the first chunk says
+#: the rest would take longer than this many CPU seconds here
+IN_PROCESS_SECONDS = 30.0
 
 
 @contextlib.contextmanager
@@ -80,6 +85,64 @@ def dask_mapper(
         conn.close()
 
 
+def _in_process(progress: Progress | None):
+    def mapper(func, jobs):
+        out = []
+        for k, job in enumerate(jobs):
+            out.append(func(*job))
+            if progress is not None:
+                progress("resampling", k + 1, len(jobs))
+        return out
+
+    return mapper
+
+
+@contextlib.contextmanager
+def resampling_mapper(
+    workers: int | None = None,
+    scheduler: str | None = None,
+    scheduler_file: str | None = None,
+    progress: Progress | None = None,
+) -> Iterator[Callable]:
+    """Where the resampled refits run.
+
+    ``workers = 0``: in this process.  ``workers ≥ 1`` or a scheduler: on Dask (a local
+    cluster of that many workers, or the given scheduler).  ``workers = None`` and no
+    scheduler (automatic): the first chunk runs here and is timed (process CPU time); if
+    the remaining chunks would take more than :data:`IN_PROCESS_SECONDS` and the machine
+    has more than one core, a local Dask cluster runs them, else this process does.
+    Results do not depend on the choice (chunks are seeded by index).
+    """
+    if workers == 0 and scheduler is None and scheduler_file is None:
+        yield _in_process(progress)
+        return
+    if workers is not None or scheduler is not None or scheduler_file is not None:
+        with dask_mapper(workers, scheduler, scheduler_file, progress) as m:
+            yield m
+        return
+    stack = contextlib.ExitStack()
+
+    def mapper(func, jobs):
+        if not jobs:
+            return []
+        t0 = time.process_time()
+        first = func(*jobs[0])
+        rest_seconds = (time.process_time() - t0) * (len(jobs) - 1)
+        if progress is not None:
+            progress("resampling", 1, len(jobs))
+        if rest_seconds > IN_PROCESS_SECONDS and (os.cpu_count() or 1) > 1:
+            dask = stack.enter_context(dask_mapper(None, None, None, None))
+            rest = dask(func, jobs[1:])
+        else:
+            rest = _in_process(None)(func, jobs[1:])
+        if progress is not None:
+            progress("resampling", len(jobs), len(jobs))
+        return [first, *rest]
+
+    with stack:
+        yield mapper
+
+
 def load(source: str | Path) -> pd.DataFrame:
     try:
         return read_points(source)
@@ -87,52 +150,54 @@ def load(source: str | Path) -> pd.DataFrame:
         raise AnalysisError(str(exc)) from None
 
 
-def model_for(sl: Slice, req: FitRequest) -> ScalingModel:
+def symmetric_for(sl: Slice, req: FitRequest) -> bool:
     sym = sl.symmetric if req.symmetric is None else req.symmetric
     if sym and not sl.symmetric and sl.p_block is not None:
         raise AnalysisError(
             f"--symmetric: p_block = {sl.p_block:g} and p_open = {sl.p_open:g} differ, so the "
             "network is not self-dual; drop --symmetric"
         )
+    return sym
+
+
+def analyse(
+    data: ScalingData, sym: bool, req: FitRequest, mapper=None, progress: Progress | None = None
+) -> Outcome:
+    """The shared procedure (:func:`sweepctl.fss.procedure.run`) with the request's options."""
+    if req.correction not in ("power", "log"):
+        raise AnalysisError(f"--correction: {req.correction!r} is not power or log; choose one")
+    if req.n_min is not None and req.n_min not in data.widths():
+        raise AnalysisError(
+            f"--n-min {req.n_min}: not one of the widths {data.widths()}; choose one"
+        )
     try:
-        return ScalingModel(req.orders, symmetric=sym, correction=req.correction)
-    except ValueError as exc:
-        raise AnalysisError(f"--correction: {exc}") from None
+        return procedure.run(
+            data,
+            symmetric=sym,
+            orders=req.orders,
+            correction=req.correction,
+            n_min=req.n_min,
+            max_orders=req.max_orders,
+            resamples=req.resamples,
+            seed=req.seed,
+            level=req.level,
+            mapper=mapper,
+            progress=progress,
+        )
+    except (FitError, ValueError) as exc:
+        raise AnalysisError(str(exc)) from None
 
 
 def fit_source(
-    df: pd.DataFrame, req: FitRequest, mapper=None
-) -> tuple[Slice, ScalingData, Fit, Intervals]:
-    """Best fit of the requested model to one slice and its resampled intervals."""
-    try:
-        sl = choose_slice(df, req.disorder, req.epsilon)
-        data = select(df, sl)
-        model = model_for(sl, req)
-        if req.n_min is not None and req.n_min not in data.widths():
-            raise FitError(
-                f"--n-min {req.n_min}: not one of the widths {data.widths()}; choose one"
-            )
-        best = fit(data, model, n_min=req.n_min)
-        cis = resampled_intervals(
-            data, best, resamples=req.resamples, seed=req.seed, level=req.level, mapper=mapper
-        )
-    except FitError as exc:
-        raise AnalysisError(str(exc)) from None
-    return sl, data, best, cis
-
-
-def scan_source(
-    df: pd.DataFrame, req: FitRequest, max_orders: Orders, progress: Progress | None = None
-) -> tuple[Slice, list[ScanRow], ScanRow | None]:
+    df: pd.DataFrame, req: FitRequest, mapper=None, progress: Progress | None = None
+) -> tuple[Slice, Outcome]:
+    """The procedure on the one slice the request names (``sweepctl fit``)."""
     try:
         sl = choose_slice(df, req.disorder, req.epsilon)
         data = select(df, sl)
     except FitError as exc:
         raise AnalysisError(str(exc)) from None
-    sym = model_for(sl, req).symmetric
-    cb = None if progress is None else (lambda k, n: progress("scanning", k, n))
-    rows = scan(data, max_orders, symmetric=sym, with_log=True, progress=cb)
-    return sl, rows, stable_choice(rows)
+    return sl, analyse(data, symmetric_for(sl, req), req, mapper, progress)
 
 
 def provenance(store_dir: Path) -> list[tuple[str, str]]:
@@ -182,7 +247,8 @@ def build_report(
     mapper=None,
     progress: Progress | None = None,
 ) -> tuple[Path, Path, list[Path]]:
-    """Fit every slice of a store and write plots, report.md and report.html into ``out``."""
+    """Run the procedure on every slice of a store; plots, report.md, report.html and
+    fits.json into ``out``."""
     from sweepctl import report as rp
 
     if not (Path(store_dir) / "campaign.json").exists():
@@ -196,52 +262,28 @@ def build_report(
     for k, sl in enumerate(todo):
         data = select(df, sl)
         sym = sl.symmetric if req.symmetric is None else req.symmetric and sl.symmetric
-        model = ScalingModel(req.orders, symmetric=sym, correction=req.correction)
-        n_min = req.n_min
-        best = cis = None
+        outcome = None
         note = ""
-        if req.auto_orders:
-            # the practitioner's choice: the scan's stable form, else the default orders
-            choice = stable_choice(scan(data, REPORT_MAX_ORDERS, symmetric=sym, with_log=False))
-            if choice is not None:
-                model, n_min = choice.model, choice.n_min
-                note = (
-                    f"Form chosen by the scan over orders up to {REPORT_MAX_ORDERS.label()} "
-                    "and every N_min (fewest parameters with p ≥ 0.1 and ν unchanged when "
-                    "the smallest widths are dropped)."
-                )
-            else:
-                note = (
-                    f"The scan over orders up to {REPORT_MAX_ORDERS.label()} found no stable "
-                    f"form; shown: the default orders {req.orders.label()} (treat with care)."
-                )
         try:
-            best = fit(data, model, n_min=n_min)
-            cis = resampled_intervals(
-                data, best, resamples=req.resamples, seed=req.seed, mapper=mapper
-            )
-        except FitError as exc:
-            note = f"{note} No fit: {exc}".strip()
-        # ν against N_min for the requested form and, for comparison, without its
-        # irrelevant field (which can be fitted on one width fewer)
-        forms = [model]
-        if model.has_irrelevant:
-            o = model.orders
-            forms.append(ScalingModel(Orders(o.n_R, 0, o.m_R, 0), symmetric=model.symmetric))
-        nmin_rows = []
-        for m in forms:
-            for n in data.widths():
-                with contextlib.suppress(FitError):
-                    nmin_rows.append(ScanRow(m, n, fit(data, m, n_min=n)))
-        s = rp.SliceReport(sl.label(), data, best, cis, nmin_rows, note=note)
+            outcome = analyse(data, sym, req, mapper)
+        except AnalysisError as exc:
+            note = f"No fit: {exc}"
+        s = rp.SliceReport(sl.label(), data, outcome, note=note)
         title = sl.label()
+        best = outcome.best if outcome is not None else None
         s.plots += rp.plot_gamma_vs_x(data, best, out, f"gamma_vs_x_{sl.tag()}", title)
         if best is not None:
             s.plots += rp.plot_collapse(data, best, out, f"collapse_{sl.tag()}", title)
-        if len(nmin_rows) >= 1:
-            s.plots += rp.plot_nu_vs_nmin(
-                nmin_rows, out, f"nu_vs_nmin_{sl.tag()}", f"{title}: ν against N_min"
-            )
+        if outcome is not None:
+            rows = rp.nmin_rows(outcome)
+            if rows:
+                s.plots += rp.plot_nu_vs_nmin(
+                    rows, out, f"nu_vs_nmin_{sl.tag()}", f"{title}: ν against N_min"
+                )
+            if outcome.effective:
+                s.plots += rp.plot_effective(
+                    outcome, out, f"nu_effective_{sl.tag()}", f"{title}: effective exponent"
+                )
         reports.append(s)
         all_plots += s.plots
         if progress is not None:
@@ -258,7 +300,7 @@ def build_report(
             )
     all_plots += eps_plots
     summary = {
-        s.label: (rp.fit_summary(s.best, s.cis) if s.best is not None else {"error": s.note})
+        s.label: (rp.outcome_summary(s.outcome) if s.outcome is not None else {"error": s.note})
         for s in reports
     }
     (out / "fits.json").write_text(json.dumps(summary, indent=2) + "\n")

@@ -103,6 +103,22 @@ def _write_file(path: Path, data: bytes | str, option: str) -> None:
         ) from None
 
 
+def _check_writable_dir(directory: Path, option: str) -> None:
+    """Fail now, with one line naming the option, if files cannot be created in ``directory``
+    (before minutes of fitting are spent, not after)."""
+    import tempfile
+
+    try:
+        directory.mkdir(parents=True, exist_ok=True)
+        with tempfile.NamedTemporaryFile(dir=directory, prefix=".sweepctl-probe-"):
+            pass
+    except OSError as exc:
+        raise UserError(
+            f"{option}: cannot write in {str(directory)!r} ({exc.strerror or exc}); "
+            "choose a writable path"
+        ) from None
+
+
 def _parse_widths(text: str) -> list[int]:
     try:
         widths = [int(w) for w in text.split(",") if w.strip()]
@@ -373,8 +389,9 @@ def load_recipe_or_fail(path: Path):
 class _RunDisplay:
     """Progress bar with ETA on a terminal; a plain line every 30 s otherwise."""
 
-    def __init__(self) -> None:
-        self.tty = console.is_terminal
+    def __init__(self, out: Console | None = None) -> None:
+        self.out = out or console
+        self.tty = self.out.is_terminal
         self.progress = None
         self.task = None
         self.last_line = 0.0
@@ -1046,8 +1063,9 @@ def audit(
 class _StepDisplay:
     """A bar per stage on a terminal; a plain line every 10 s (and at the end) otherwise."""
 
-    def __init__(self) -> None:
-        self.tty = console.is_terminal
+    def __init__(self, out: Console | None = None) -> None:
+        self.out = out or console
+        self.tty = self.out.is_terminal
         self.progress = None
         self.tasks: dict[str, object] = {}
         self.last = 0.0
@@ -1064,7 +1082,7 @@ class _StepDisplay:
                     BarColumn(),
                     TextColumn("{task.completed}/{task.total}"),
                     TimeRemainingColumn(),
-                    console=console,
+                    console=self.out,
                     transient=True,
                 )
                 self.progress.start()
@@ -1073,7 +1091,7 @@ class _StepDisplay:
             self.progress.update(self.tasks[stage], completed=done, total=total)
         elif done == total or time.monotonic() - self.last >= 10.0:
             self.last = time.monotonic()
-            console.print(f"{time.strftime('%H:%M:%S')} {stage} {done}/{total}", highlight=False)
+            self.out.print(f"{time.strftime('%H:%M:%S')} {stage} {done}/{total}", highlight=False)
 
     def close(self) -> None:
         if self.progress is not None:
@@ -1102,25 +1120,13 @@ def _disorder(text: str | None):
     return pb, po
 
 
-OrdersOpt = Annotated[
-    str,
-    typer.Option(
-        "--orders",
-        help="Expansion orders n_R,n_I,m_R,m_I of F (relevant, irrelevant) and u_0, u_1.",
-    ),
-]
-FitWorkersOpt = Annotated[
-    int | None, typer.Option("--workers", min=1, help="Local worker processes for resampling.")
-]
-
-
 def _fit_request(orders, n_min, symmetric, correction, disorder, epsilon, resamples, seed):
     from sweepctl.analysis import FitRequest
 
     if correction not in ("power", "log"):
         raise UserError(f"--correction: {correction!r} is not power or log; choose one")
     return FitRequest(
-        orders=_orders(orders, "--orders"),
+        orders=None if orders is None else _orders(orders, "--orders"),
         n_min=n_min,
         symmetric=symmetric,
         correction=correction,
@@ -1157,12 +1163,33 @@ def _print_epsilon_check(df) -> None:
         console.print(describe_range(pb, po, lo, hi), highlight=False)
 
 
+#: exit status of ``fit`` when no form is acceptable (1: audit failed, 2: bad input)
+EXIT_NO_ACCEPTABLE_FORM = 3
+
+
+def _rich_table(title: str, head: list[str], rows: list[list[str]]) -> Table:
+    t = Table(title=title)
+    for c in head:
+        t.add_column(c)
+    for r in rows:
+        t.add_row(*r)
+    return t
+
+
 @app.command("fit")
 def fit_cmd(
     source: Annotated[Path, typer.Argument(help="A store, or a points table (CSV/Parquet).")],
-    orders: OrdersOpt = "2,1,1,0",
+    orders: Annotated[
+        str | None,
+        typer.Option(
+            "--orders",
+            help="Fit only this form n_R,n_I,m_R,m_I (default: scan every form up to "
+            "--max-orders and every N_min, take the stable choice).",
+        ),
+    ] = None,
     n_min: Annotated[
-        int | None, typer.Option("--n-min", help="Smallest width used (default: all).")
+        int | None,
+        typer.Option("--n-min", help="Smallest width used (default: all; the scan tries each)."),
     ] = None,
     symmetric: Annotated[
         bool | None,
@@ -1172,108 +1199,118 @@ def fit_cmd(
         ),
     ] = None,
     correction: Annotated[
-        str, typer.Option("--correction", help="Irrelevant field: power (N^y) or log (1/ln N).")
+        str,
+        typer.Option(
+            "--correction", help="With --orders: irrelevant field power (N^y) or log (1/ln N)."
+        ),
     ] = "power",
     disorder: Annotated[
         str | None, typer.Option("--disorder", help="Slice P_BLOCK,P_OPEN of the table.")
     ] = None,
     epsilon: Annotated[float | None, typer.Option("--epsilon", help="Slice ε.")] = None,
     resamples: Annotated[
-        int, typer.Option("--resamples", min=20, help="Gaussian resamples for the CIs.")
-    ] = 200,
+        int, typer.Option("--resamples", min=20, help="Resampled refits for the intervals.")
+    ] = 1000,
     seed: Annotated[int, typer.Option("--seed", min=0, help="Seed of the resampling.")] = 0,
-    json_out: Annotated[Path | None, typer.Option("--json", help="Write the fit as JSON.")] = None,
+    json_out: Annotated[
+        bool, typer.Option("--json", help="Print the fit as JSON instead of the tables.")
+    ] = False,
+    out: Annotated[
+        Path | None, typer.Option("--out", help="Also write the fit as JSON to this file.")
+    ] = None,
     scan_: Annotated[
-        bool, typer.Option("--scan", help="Compare all orders and N_min windows.")
+        bool, typer.Option("--scan", help="Also print every form and N_min window tried.")
     ] = False,
     max_orders: Annotated[
         str, typer.Option("--max-orders", help="Largest orders of the scan.")
-    ] = "3,1,3,1",
-    workers: FitWorkersOpt = None,
+    ] = "4,1,3,1",
+    workers: Annotated[
+        int | None,
+        typer.Option(
+            "--workers",
+            min=0,
+            help="Resampling: 0 in this process, N local Dask workers (default: in this "
+            "process unless the work is large).",
+        ),
+    ] = None,
     scheduler: SchedulerOpt = None,
     scheduler_file: SchedulerFileOpt = None,
 ) -> None:
-    """Finite-size-scaling fit of Γ(x, N): ν, y, x_c, Γ_c with 95 % intervals."""
+    """Finite-size-scaling fit of Γ(x, N): ν, y, x_c, Γ_c with 95 % intervals.
+
+    Exit status 0 with a result, 2 for bad input, 3 when no form is acceptable (then no
+    ν or Γ_c is printed, and the attempts are listed).
+    """
     from sweepctl import analysis
-    from sweepctl.report import fit_summary, fit_table
+    from sweepctl import report as rp
 
     req = _fit_request(orders, n_min, symmetric, correction, disorder, epsilon, resamples, seed)
-    mx = _orders(max_orders, "--max-orders")
+    req.max_orders = _orders(max_orders, "--max-orders")
+    if out is not None:
+        if out.is_dir():
+            raise UserError(f"--out: {str(out)!r} is a directory; give a file name, e.g. fit.json")
+        _check_writable_dir(out.parent, "--out")
     df = analysis.load(source)
-    _print_epsilon_check(df)
-    show = _StepDisplay()
+    if not json_out:
+        _print_epsilon_check(df)
+    show = _StepDisplay(err_console if json_out else None)
     try:
-        if scan_:
-            sl, rows, choice = analysis.scan_source(df, req, mx, progress=show)
-            show.close()
-            t = Table(title=f"scan — {sl.label()}; ν interval linearised (±1.96σ)")
-            for c in ("orders", "form", "N_min", "χ²/dof", "p", "ν", "ν 95 %", ""):
-                t.add_column(c)
-            for r in rows:
-                kind = ("sym" if r.model.symmetric else "gen") + (
-                    "" if not r.model.has_irrelevant else f" {r.model.correction}"
-                )
-                if r.fit is None:
-                    t.add_row(
-                        r.model.orders.label(), kind, str(r.n_min), "—", "—", "—", "—", "failed"
-                    )
-                    continue
-                lo, hi = r.nu_ci()
-                mark = "◀ stable choice" if r is choice else ""
-                if r.fit.at_bound:
-                    mark = f"{', '.join(r.fit.at_bound)} at bound"
-                t.add_row(
-                    r.model.orders.label(),
-                    kind,
-                    str(r.n_min),
-                    f"{r.fit.chi2 / r.fit.dof:.2f}",
-                    f"{r.fit.p_value:.3f}",
-                    f"{r.fit.values()['nu']:.4f}",
-                    f"[{lo:.3f}, {hi:.3f}]",
-                    mark,
-                )
-            console.print(t)
-            if choice is None:
-                console.print(
-                    "no stable choice: no power-law form has p ≥ 0.1 with ν agreeing across "
-                    "N_min; raise --max-orders or add widths"
-                )
-                return
-            console.print(
-                f"stable choice: {choice.model.describe()}, N_min = {choice.n_min}; "
-                "refitting it with resampled intervals"
-            )
-            req.orders, req.n_min = choice.model.orders, choice.n_min
-            req.correction = choice.model.correction
-        with analysis.dask_mapper(
+        with analysis.resampling_mapper(
             workers, scheduler, str(scheduler_file) if scheduler_file else None, progress=show
         ) as mapper:
-            sl, _, best, cis = analysis.fit_source(df, req, mapper=mapper)
+            sl, o = analysis.fit_source(df, req, mapper=mapper, progress=show)
     finally:
         show.close()
-    t = Table(title=f"fit — {sl.label()}")
-    for c in ("quantity", "value", "95 % interval"):
-        t.add_column(c)
-    for row in fit_table(best, cis):
-        t.add_row(*row)
-    console.print(t)
-    console.print(
-        f"{best.model.describe()}, N ≥ {best.n_min}, {best.points_used} points: "
-        f"χ² = {best.chi2:.2f}, dof = {best.dof}, p = {best.p_value:.3f}"
-        + (f"; {cis.failed} of {cis.resamples} refits failed" if cis.failed else ""),
-        highlight=False,
-    )
-    if best.p_value < 0.1:
-        console.print("warning: p < 0.1 — this form does not describe the data; try --scan")
-    if best.at_bound:
+    summary = rp.outcome_summary(o)
+    if out is not None:
+        _write_file(out, json_text(summary) + "\n", "--out")
+    if json_out:
+        _print_json(summary)
+        if out is not None:
+            err_console.print(f"wrote {out}")
+        if not o.acceptable:
+            raise typer.Exit(EXIT_NO_ACCEPTABLE_FORM)
+        return
+    if scan_ or not o.acceptable:
         console.print(
-            f"warning: {', '.join(best.at_bound)} ended on the bound of the search — the data "
-            "do not determine it (for y: the irrelevant field merges with the constant); "
-            "add widths or drop the irrelevant field (n_I = 0)"
+            _rich_table(
+                f"forms tried — {sl.label()}; ν interval linearised (±1.96σ)",
+                rp.ATTEMPT_HEAD,
+                rp.attempt_rows(o.rows, o.choice),
+            )
         )
-    if json_out is not None:
-        json_out.write_text(json.dumps(fit_summary(best, cis), indent=2) + "\n")
-        console.print(f"wrote {json_out}")
+    if o.effective:
+        console.print(
+            _rich_table(
+                "effective exponent from adjacent widths (no scaling form assumed)",
+                rp.EFFECTIVE_HEAD,
+                rp.effective_rows(o),
+            )
+        )
+    if o.acceptable:
+        console.print(_rich_table(f"fit — {sl.label()}", rp.HEADLINE_HEAD, rp.headline_rows(o)))
+        console.print(
+            _rich_table("branches (acceptable minima)", rp.BRANCH_HEAD, rp.branch_rows(o))
+        )
+        if o.sensitivity_reason and o.sensitivity_fits():
+            console.print(
+                _rich_table(
+                    "acceptable fits with y fixed",
+                    rp.ATTEMPT_HEAD,
+                    rp.attempt_rows([r for r in o.sensitivity if r.acceptable]),
+                )
+            )
+    for line in rp.words(o):
+        console.print(line, highlight=False)
+    if o.acceptable and o.best.at_bound:
+        console.print(
+            f"warning: {', '.join(o.best.at_bound)} ended on the bound of the search — the data "
+            "do not determine it; add widths or drop the irrelevant field (n_I = 0)"
+        )
+    if out is not None:
+        console.print(f"wrote {out}")
+    if not o.acceptable:
+        raise typer.Exit(EXIT_NO_ACCEPTABLE_FORM)
 
 
 @app.command("report")
@@ -1290,23 +1327,39 @@ def report_cmd(
     n_min: Annotated[int | None, typer.Option("--n-min", help="Smallest width used.")] = None,
     correction: Annotated[str, typer.Option("--correction", help="power or log.")] = "power",
     resamples: Annotated[
-        int, typer.Option("--resamples", min=20, help="Gaussian resamples for the intervals.")
-    ] = 200,
+        int, typer.Option("--resamples", min=20, help="Resampled refits for the intervals.")
+    ] = 1000,
     seed: Annotated[int, typer.Option("--seed", min=0, help="Seed of the resampling.")] = 0,
-    workers: FitWorkersOpt = None,
+    max_orders: Annotated[
+        str, typer.Option("--max-orders", help="Largest orders of the scan.")
+    ] = "4,1,3,1",
+    workers: Annotated[
+        int | None,
+        typer.Option(
+            "--workers",
+            min=0,
+            help="Resampling: 0 in this process, N local Dask workers (default: in this "
+            "process unless the work is large).",
+        ),
+    ] = None,
     scheduler: SchedulerOpt = None,
     scheduler_file: SchedulerFileOpt = None,
 ) -> None:
-    """Fits, plots (PNG and PDF) and a Markdown/HTML summary with the provenance."""
+    """Fits, plots (PNG and PDF) and a Markdown/HTML summary with the provenance.
+
+    Exit status 0 when the report is written, also when a slice has no acceptable form
+    (its section then says "no acceptable form" and lists the attempts); 2 for bad input.
+    """
     from sweepctl import analysis
 
-    req = _fit_request(orders or "2,1,1,0", n_min, None, correction, None, None, resamples, seed)
-    req.auto_orders = orders is None and n_min is None
+    req = _fit_request(orders, n_min, None, correction, None, None, resamples, seed)
+    req.max_orders = _orders(max_orders, "--max-orders")
     if not (store / "campaign.json").exists():
-        raise UserError(f"{store}: not a store (no campaign.json); give the --store of a run")
+        raise UserError(f"{store}: not a store (no campaign.json); give a run's store directory")
+    _check_writable_dir(out, "--out")
     show = _StepDisplay()
     try:
-        with analysis.dask_mapper(
+        with analysis.resampling_mapper(
             workers, scheduler, str(scheduler_file) if scheduler_file else None, progress=show
         ) as mapper:
             md, html_path, plots = analysis.build_report(store, out, req, mapper, show)

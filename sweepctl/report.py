@@ -10,7 +10,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from sweepctl.fss.fit import QUANTITIES, Fit, Intervals, ScalingData
+from sweepctl.fss.fit import QUANTITIES, Fit, ScalingData
+from sweepctl.fss.procedure import Outcome
 from sweepctl.fss.regularisation import FlatRow, describe_range
 from sweepctl.fss.scan import ScanRow
 
@@ -143,6 +144,27 @@ def plot_nu_vs_nmin(rows: list[ScanRow], out: Path, stem: str, title: str):
     return _save(fig, out, stem)
 
 
+def plot_effective(outcome: Outcome, out: Path, stem: str, title: str):
+    """ν_eff of adjacent width pairs against √(N₁N₂), with the headline ν band."""
+    plt = _mpl()
+    fig, ax = plt.subplots(figsize=(5.5, 4.0))
+    eff = outcome.effective
+    n = np.array([e.N_mid for e in eff])
+    nu = np.array([e.nu for e in eff])
+    err = np.array([e.err for e in eff])
+    ax.errorbar(n, nu, yerr=err, fmt="o-", ms=4, capsize=3, label="ν_eff (adjacent widths)")
+    if outcome.acceptable:
+        lo, hi = outcome.interval("nu")
+        ax.axhspan(lo, hi, color="C1", alpha=0.25, label="headline ν, 95 %")
+    ax.set_xscale("log", base=2)
+    ax.set_xlabel("√(N₁ N₂)")
+    ax.set_ylabel("effective exponent ν_eff")
+    ax.set_title(title, fontsize=9)
+    ax.legend(fontsize=8, frameon=False)
+    ax.grid(alpha=0.3)
+    return _save(fig, out, stem)
+
+
 def plot_gamma_vs_epsilon(df: pd.DataFrame, out: Path, stem: str, title: str):
     """Γ against ε per width, at the coupling nearest x = 0 (log ε axis)."""
     plt = _mpl()
@@ -172,47 +194,116 @@ def plot_gamma_vs_epsilon(df: pd.DataFrame, out: Path, stem: str, title: str):
     return _save(fig, out, stem)
 
 
-# -- the report document ---------------------------------------------------------------
 @dataclass
 class SliceReport:
     label: str
     data: ScalingData
-    best: Fit | None
-    cis: Intervals | None
-    nmin_rows: list[ScanRow] = field(default_factory=list)
+    outcome: Outcome | None
     plots: list[Path] = field(default_factory=list)
     note: str = ""
 
 
-def fit_summary(best: Fit, cis: Intervals | None) -> dict:
-    """The issue's JSON fields for one fit."""
+def _num(z):
+    if z is None:
+        return None
+    z = float(z)
+    return None if math.isnan(z) else z
+
+
+def _pair(p):
+    return [_num(p[0]), _num(p[1])]
+
+
+def _form(model) -> dict:
+    o = model.orders
+    return {
+        "orders": {"n_R": o.n_R, "n_I": o.n_I, "m_R": o.m_R, "m_I": o.m_I},
+        "symmetric": model.symmetric,
+        "correction": model.correction if model.has_irrelevant else None,
+        "fixed_y": model.fixed_y,
+    }
+
+
+def _attempt(r: ScanRow) -> dict:
+    d = {**_form(r.model), "n_min": int(r.n_min)}
+    if r.fit is None:
+        return {**d, "error": r.error}
+    return {
+        **d,
+        "nu": _num(r.fit.values()["nu"]),
+        "nu_ci_linearised": _pair(r.nu_ci()),
+        "chi2": float(r.fit.chi2),
+        "dof": int(r.fit.dof),
+        "p_value": float(r.fit.p_value),
+        "at_bound": list(r.fit.at_bound),
+        "minima": len(r.minima),
+    }
+
+
+def outcome_summary(o: Outcome) -> dict:
+    """The JSON of ``fit --json`` and of each slice in ``fits.json``."""
+    out: dict = {
+        "acceptable": o.acceptable,
+        "procedure": "scan" if o.mode == "scan" else "one form",
+        "max_orders": o.max_orders.label() if o.max_orders is not None else None,
+        "effective_exponents": [
+            {"N1": e.N1, "N2": e.N2, "nu": e.nu, "err": e.err, "kind": e.kind} for e in o.effective
+        ],
+    }
+    if not o.acceptable:
+        out["verdict"] = "no acceptable form"
+        for q in QUANTITIES:
+            out[q] = None
+            out[f"{q}_ci"] = [None, None]
+        out["attempts"] = [_attempt(r) for r in o.rows]
+        return out
+    best = o.best
     v = best.values()
-
-    def num(z):
-        return None if z is None or (isinstance(z, float) and math.isnan(z)) else float(z)
-
-    out = {}
     for q in QUANTITIES:
-        out[q] = num(v[q])
-        ci = cis.bounds[q] if cis is not None else (math.nan, math.nan)
+        out[q] = _num(v[q])
+        ci = o.interval(q)
         if q == "x_c" and best.model.symmetric:
             ci = (0.0, 0.0)  # fixed by duality
         if q == "y" and not best.model.has_y:
             ci = (math.nan, math.nan)
-        out[f"{q}_ci"] = [num(ci[0]), num(ci[1])]
-    o = best.model.orders
+        out[f"{q}_ci"] = _pair(ci)
+    stat = o.branches[0].cis
     out.update(
+        nu_ci_statistical=_pair(stat.bounds["nu"]),
+        Gamma_c_ci_statistical=_pair(stat.bounds["Gamma_c"]),
         chi2=float(best.chi2),
         dof=int(best.dof),
         p_value=float(best.p_value),
-        orders={"n_R": o.n_R, "n_I": o.n_I, "m_R": o.m_R, "m_I": o.m_I},
-        symmetric=best.model.symmetric,
-        correction=best.model.correction if best.model.has_irrelevant else None,
+        gof_method=best.gof_method,
+        **_form(best.model),
         n_min=int(best.n_min),
         points_used=int(best.points_used),
-        resamples=None if cis is None else cis.resamples,
-        resamples_failed=None if cis is None else cis.failed,
+        resamples=stat.resamples,
+        resamples_failed=stat.failed,
         at_bound=list(best.at_bound),
+        ambiguous=o.ambiguous,
+        branches_disagree=o.branches_disagree,
+        disagreeing_forms=[_attempt(r) for r in o.disagreeing_forms()],
+        branches=[
+            {
+                "nu": _num(b.fit.values()["nu"]),
+                "nu_ci": _pair(b.cis.bounds["nu"]),
+                "y": _num(b.fit.values()["y"]),
+                "x_c": _num(b.fit.values()["x_c"]),
+                "Gamma_c": _num(b.fit.values()["Gamma_c"]),
+                "chi2": float(b.fit.chi2),
+                "dof": int(b.fit.dof),
+                "p_value": float(b.fit.p_value),
+            }
+            for b in o.branches
+        ],
+        nu_model_spread=_pair(o.model_spread("nu")),
+        Gamma_c_model_spread=_pair(o.model_spread("Gamma_c")),
+        stable_forms=[_attempt(r) for r in o.stable_forms],
+        correction_sensitivity=o.sensitivity_reason or None,
+        fixed_y_fits=[_attempt(r) for r in o.sensitivity if r.acceptable],
+        nu_range=_pair(o.value_range("nu")),
+        Gamma_c_range=_pair(o.value_range("Gamma_c")),
     )
     return out
 
@@ -223,18 +314,167 @@ def _fmt(z: float | None, digits: int = 4) -> str:
     return f"{z:.{digits}f}"
 
 
-def fit_table(best: Fit, cis: Intervals | None) -> list[list[str]]:
-    s = fit_summary(best, cis)
+def _iv(p, digits: int = 4) -> str:
+    return f"[{_fmt(p[0], digits)}, {_fmt(p[1], digits)}]"
+
+
+def headline_rows(o: Outcome) -> list[list[str]]:
+    """quantity, value, 95 % interval (statistical and branches), model-choice spread."""
+    s = outcome_summary(o)
     rows = []
     for q in QUANTITIES:
         if s[q] is None:
             continue
-        lo, hi = s[f"{q}_ci"]
-        fixed = q == "x_c" and best.model.symmetric
+        fixed = q == "x_c" and o.best.model.symmetric
+        spread = "" if fixed else _iv(o.model_spread(q))
+        if q == "y" and not o.best.model.has_y:
+            rows.append([LABELS[q], _fmt(s[q]), "fixed" if s[q] is not None else "—", ""])
+            continue
         rows.append(
-            [LABELS[q], _fmt(s[q]), "fixed by duality" if fixed else f"[{_fmt(lo)}, {_fmt(hi)}]"]
+            [LABELS[q], _fmt(s[q]), "fixed by duality" if fixed else _iv(s[f"{q}_ci"]), spread]
         )
     return rows
+
+
+HEADLINE_HEAD = ["quantity", "value", "95 % interval", "model-choice spread"]
+BRANCH_HEAD = ["branch", "ν", "ν 95 %", "y", "x_c", "Γ_c", "χ²", "dof", "p"]
+ATTEMPT_HEAD = ["form", "N_min", "χ²/dof", "p", "ν", "ν 95 % (linearised)", "note"]
+EFFECTIVE_HEAD = ["widths", "√(N₁N₂)", "ν_eff", "±", "from"]
+
+
+def branch_rows(o: Outcome) -> list[list[str]]:
+    rows = []
+    for k, b in enumerate(o.branches, 1):
+        v = b.fit.values()
+        rows.append(
+            [
+                str(k),
+                _fmt(v["nu"]),
+                _iv(b.cis.bounds["nu"]),
+                _fmt(v["y"], 3),
+                _fmt(v["x_c"], 4),
+                _fmt(v["Gamma_c"]),
+                _fmt(b.fit.chi2, 2),
+                str(b.fit.dof),
+                _fmt(b.fit.p_value, 3),
+            ]
+        )
+    return rows
+
+
+def attempt_rows(rows: list[ScanRow], mark: ScanRow | None = None) -> list[list[str]]:
+    out = []
+    for r in rows:
+        if r.fit is None:
+            out.append([r.model.describe(), str(r.n_min), "—", "—", "—", "—", "failed"])
+            continue
+        note = "◀ stable choice" if r is mark else ""
+        if r.fit.at_bound:
+            note = f"{', '.join(r.fit.at_bound)} at bound"
+        elif len(r.minima) > 1:
+            accepted = sum(1 for f in r.minima if f.p_value >= 0.1 and not f.at_bound)
+            note = (note + f" {len(r.minima)} minima, {accepted} acceptable").strip()
+        out.append(
+            [
+                r.model.describe(),
+                str(r.n_min),
+                _fmt(r.fit.chi2 / r.fit.dof, 2),
+                _fmt(r.fit.p_value, 3),
+                _fmt(r.fit.values()["nu"]),
+                _iv(r.nu_ci(), 3),
+                note,
+            ]
+        )
+    return out
+
+
+def effective_rows(o: Outcome) -> list[list[str]]:
+    return [
+        [f"{e.N1}, {e.N2}", _fmt(e.N_mid, 1), _fmt(e.nu, 3), _fmt(e.err, 3), e.kind]
+        for e in o.effective
+    ]
+
+
+def words(o: Outcome) -> list[str]:
+    """The outcome in sentences (printed by ``fit``, written into the report)."""
+    if not o.acceptable:
+        what = (
+            f"orders up to {o.max_orders.label()} at every N_min"
+            if o.mode == "scan"
+            else o.rows[0].model.describe()
+        )
+        return [
+            f"no acceptable form: {what} gave no fit with p ≥ 0.1 (and no parameter on a "
+            "bound) that is stable when the smallest widths are dropped; no ν or Γ_c is "
+            "reported. The attempts are listed; add widths or points, or raise the orders."
+        ]
+    b = o.best
+    out = []
+    how = (
+        f"stable choice of the scan over orders up to {o.max_orders.label()} and every N_min"
+        if o.mode == "scan"
+        else "the requested form"
+    )
+    out.append(
+        f"{b.model.describe()}, N ≥ {b.n_min}, {b.points_used} points ({how}): "
+        f"χ² = {b.chi2:.2f}, dof = {b.dof}, p = {b.p_value:.3f}; 95 % intervals from "
+        f"{o.branches[0].cis.resamples} resampled refits"
+        + (f" ({o.branches[0].cis.failed} failed)" if o.branches[0].cis.failed else "")
+        + "."
+    )
+    if len(o.branches) > 1:
+        nus = ", ".join(f"{br.fit.values()['nu']:.3f}" for br in o.branches)
+        if o.branches_disagree:
+            out.append(
+                f"AMBIGUOUS: the form has {len(o.branches)} acceptable branches with ν = {nus} "
+                "whose intervals do not overlap; the data cannot decide between them, so the "
+                "headline interval covers every branch (no physics criterion rules one out)."
+            )
+        else:
+            out.append(
+                f"The form has {len(o.branches)} acceptable branches (ν = {nus}); their "
+                "intervals overlap, and the headline interval covers all of them."
+            )
+    for r in o.disagreeing_forms():
+        lo, hi = r.nu_ci()
+        out.append(
+            f"AMBIGUOUS: {r.model.describe()} is also stable (N ≥ {r.n_min}, p = "
+            f"{r.fit.p_value:.3f}) and gives ν = {r.fit.values()['nu']:.3f} [{lo:.3f}, "
+            f"{hi:.3f}] (linearised), outside the headline interval; the data cannot decide "
+            "between the forms."
+        )
+    lo, hi = o.model_spread("nu")
+    slo, shi = o.interval("nu")
+    if len(o.stable_forms) > 1:
+        extra = (
+            " — wider than the statistical interval: the choice of form matters"
+            if lo < slo or hi > shi
+            else ""
+        )
+        out.append(
+            f"Model choice: {len(o.stable_forms)} stable forms give ν from {lo:.3f} to "
+            f"{hi:.3f}{extra}."
+        )
+    if o.sensitivity_reason:
+        ok = o.sensitivity_fits()
+        out.append(
+            f"Correction sensitivity ({o.sensitivity_reason}): refitted with y fixed at each of "
+            + ", ".join(f"{y:g}" for y in sorted({r.model.fixed_y for r in o.sensitivity}))
+            + f" at every N_min; {len(ok)} of {len(o.sensitivity)} fixed-y fits are acceptable."
+        )
+    nlo, nhi = o.value_range("nu")
+    glo, ghi = o.value_range("Gamma_c")
+    out.append(
+        f"Over every acceptable fit (branches, stable forms, fixed-y fits) ν ranges over "
+        f"[{nlo:.3f}, {nhi:.3f}] and Γ_c over [{glo:.4f}, {ghi:.4f}]."
+    )
+    return out
+
+
+def nmin_rows(o: Outcome) -> list[ScanRow]:
+    """Rows of the chosen form (or the one form) against N_min, for the ν–N_min plot."""
+    model = o.choice.model if o.choice is not None else o.rows[0].model
+    return [r for r in o.rows if r.model == model and r.fit is not None]
 
 
 def write_report(
@@ -251,67 +491,33 @@ def write_report(
     blocks.append(("table", (["item", "value"], [[k, v] for k, v in provenance])))
     for s in slices:
         blocks.append(("h2", f"Fit: {s.label}"))
-        if s.best is None:
+        o = s.outcome
+        if o is None:
             blocks.append(("p", s.note))
         else:
-            b = s.best
-            blocks.append(
-                (
-                    "p",
-                    (
-                        f"{b.model.describe()}, N ≥ {b.n_min}, {b.points_used} points, "
-                        f"χ² = {b.chi2:.2f} with {b.dof} degrees of freedom, "
-                        f"goodness of fit p = {b.p_value:.3f}"
-                        + (
-                            ""
-                            if b.p_value >= 0.1
-                            else " (below 0.1: the form does not describe the data)"
-                        )
-                        + (
-                            f"; 95 % intervals from {s.cis.resamples} Gaussian resamples"
-                            + (f" ({s.cis.failed} refits failed)" if s.cis.failed else "")
-                            if s.cis
-                            else ""
-                        )
-                        + "."
-                    ),
-                )
-            )
-            blocks.append(("table", (["quantity", "value", "95 % interval"], fit_table(b, s.cis))))
-            if b.at_bound:
-                blocks.append(
-                    (
-                        "p",
+            blocks += [("p", w) for w in words(o)]
+            if o.acceptable:
+                blocks.append(("table", (HEADLINE_HEAD, headline_rows(o))))
+                blocks.append(("table", (BRANCH_HEAD, branch_rows(o))))
+                if len(o.stable_forms) > 1:
+                    blocks.append(("table", (ATTEMPT_HEAD, attempt_rows(o.stable_forms, o.choice))))
+                if o.best.at_bound:
+                    blocks.append(
                         (
-                            f"Warning: {', '.join(b.at_bound)} ended on the bound of the search; "
-                            "the data do not determine it (add widths or drop the irrelevant "
-                            "field)."
-                        ),
+                            "p",
+                            f"Warning: {', '.join(o.best.at_bound)} ended on the bound of the "
+                            "search; the data do not determine it.",
+                        )
                     )
-                )
+            else:
+                blocks.append(("table", (ATTEMPT_HEAD, attempt_rows(o.rows))))
+            if o.effective:
+                blocks.append(("table", (EFFECTIVE_HEAD, effective_rows(o))))
+            rows = nmin_rows(o)
+            if rows and o.acceptable:
+                blocks.append(("table", (ATTEMPT_HEAD, attempt_rows(rows, o.choice))))
             if s.note:
                 blocks.append(("p", s.note))
-        if s.nmin_rows:
-            blocks.append(
-                (
-                    "table",
-                    (
-                        ["form", "N_min", "χ²/dof", "p", "ν", "ν 95 % (linearised)"],
-                        [
-                            [
-                                r.model.describe(),
-                                str(r.n_min),
-                                _fmt(r.fit.chi2 / r.fit.dof, 2),
-                                _fmt(r.fit.p_value, 3),
-                                _fmt(r.fit.values()["nu"]),
-                                f"[{_fmt(r.nu_ci()[0])}, {_fmt(r.nu_ci()[1])}]",
-                            ]
-                            for r in s.nmin_rows
-                            if r.fit is not None
-                        ],
-                    ),
-                )
-            )
         for p in s.plots:
             if p.suffix == ".png":
                 blocks.append(("img", p.name))

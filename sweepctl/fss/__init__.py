@@ -4,7 +4,16 @@ numpy and scipy only; the Dask cluster and files are the business of
 :mod:`sweepctl.analysis` and :mod:`sweepctl.report`.
 """
 
-from sweepctl.fss.fit import Fit, FitError, Intervals, ScalingData, fit, resampled_intervals
+from sweepctl.fss.fit import (
+    Fit,
+    FitError,
+    Intervals,
+    ScalingData,
+    branch_intervals,
+    explore,
+    fit,
+    resampled_intervals,
+)
 from sweepctl.fss.model import Orders, ScalingModel
 
 __all__ = [
@@ -14,6 +23,8 @@ __all__ = [
     "Orders",
     "ScalingData",
     "ScalingModel",
+    "branch_intervals",
+    "explore",
     "fit",
     "resampled_intervals",
 ]

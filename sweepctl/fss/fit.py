@@ -292,7 +292,7 @@ class Fit:
         p = self.model.unpack(self.theta)
         return {
             "nu": p["nu"],
-            "y": p.get("y", math.nan),
+            "y": p.get("y", math.nan if self.model.fixed_y is None else self.model.fixed_y),
             "x_c": p.get("x_c", 0.0),
             "Gamma_c": float(self.f[0]),
         }
@@ -376,16 +376,90 @@ def _bounds(model: ScalingModel, data: ScalingData) -> tuple[np.ndarray, np.ndar
     return np.array(lo), np.array(hi)
 
 
-def starting_points(model: ScalingModel, data: ScalingData) -> list[np.ndarray]:
-    """A small grid of starts: ν ∈ {1.5, 2.5, 4}, y ∈ {−0.5, −2}, x_c at the centre."""
+#: global exploration of the nonlinear parameters (:func:`design_of_starts`): ν is drawn
+#: log-uniformly over this range, y uniformly over the next; x_c over the data's couplings
+NU_DESIGN = (0.5, 6.0)
+Y_DESIGN = (-4.0, -0.05)
+#: points of the design whose χ² is evaluated (one profiled residual each, ~0.1 ms)
+DESIGN_SIZE = 128
+#: the design is cut into this many log-spaced ν bins; the best ``PER_BIN`` points of each
+#: bin are optimised locally, so every region of ν is tried whatever its χ² at the start
+NU_BINS = 6
+PER_BIN = 2
+DESIGN_SEED = 382
+
+
+def design_of_starts(model: ScalingModel, data: ScalingData, size: int = DESIGN_SIZE):
+    """A space-filling design (scrambled Sobol, fixed seed) of the nonlinear parameters.
+
+    ν log-uniform over ``NU_DESIGN``, y uniform over ``Y_DESIGN``, x_c uniform over the
+    data's couplings, and the field coefficients of both signs: a_k (u_0 = w + a_k w^k)
+    within ±1/s^{k−1} and b_k (u_1 = 1 + b_k w^k) within ±1/s^k, s the half-span of the
+    couplings, i.e. terms up to the size of the leading one at the edge of the data.
+
+    Returns
+    -------
+    ndarray, shape (size, k)
+        One start per row, columns in ``model.nonlinear_names()`` order.
+    """
     names = model.nonlinear_names()
-    centre = float(np.average(data.x, weights=1 / data.Gamma_err**2))
-    grids = {"nu": [1.5, 2.5, 4.0], "y": [-0.5, -2.0], "x_c": [centre]}
-    axes = [grids.get(n, [0.0]) for n in names]
-    return [np.array(p, dtype=float) for p in itertools.product(*axes)]
+    half = 0.5 * (float(np.ptp(data.x)) or 1.0)
+    lo, hi, log = [], [], []
+    for name in names:
+        if name == "nu":
+            a, b = math.log(NU_DESIGN[0]), math.log(NU_DESIGN[1])
+        elif name == "y":
+            a, b = Y_DESIGN
+        elif name == "x_c":
+            a, b = float(data.x.min()), float(data.x.max())
+        elif name.startswith("a"):
+            c = half ** -(int(name[1:]) - 1)
+            a, b = -c, c
+        else:  # b_k
+            c = half ** -int(name[1:])
+            a, b = -c, c
+        lo.append(a)
+        hi.append(b)
+        log.append(name == "nu")
+    sobol = stats.qmc.Sobol(len(names), scramble=True, seed=DESIGN_SEED)
+    u = sobol.random(size)
+    pts = np.asarray(lo) + u * (np.asarray(hi) - np.asarray(lo))
+    pts[:, np.asarray(log)] = np.exp(pts[:, np.asarray(log)])
+    return pts
 
 
-def _solve(model, data, start, lo, hi):
+def screened_starts(
+    model: ScalingModel, data: ScalingData, per_bin: int = PER_BIN
+) -> list[np.ndarray]:
+    """Local starts: the best ``per_bin`` design points (lowest profiled χ²) per ν bin.
+
+    A design point's χ² has the linear f profiled out, so it already says how well the
+    best F fits at those fields; keeping the best of every ν bin (rather than the best
+    overall) makes every part of ν's range compete, which is what finds a second branch.
+    """
+    pts = design_of_starts(model, data)
+    w = 1.0 / data.Gamma_err
+    with np.errstate(all="ignore"), warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        chi2 = np.array([float(np.sum(_residuals(p, model, data, w) ** 2)) for p in pts])
+    edges = np.geomspace(*NU_DESIGN, NU_BINS + 1)
+    bins = np.clip(np.searchsorted(edges, pts[:, 0]) - 1, 0, NU_BINS - 1)
+    out = []
+    for b in range(NU_BINS):
+        idx = np.flatnonzero(bins == b)
+        out += [pts[i] for i in idx[np.argsort(chi2[idx])][:per_bin]]
+    return out
+
+
+#: function evaluations a start of the global exploration may use; a start still moving
+#: then (a flat valley, far from any minimum that matters) is polished only if its χ² is
+#: within reach of acceptance
+EXPLORE_NFEV = 100
+EXPLORE_POLISH_NFEV = 600
+POLISH_NFEV = 2000
+
+
+def _solve(model, data, start, lo, hi, max_nfev=POLISH_NFEV):
     w = 1.0 / data.Gamma_err
     pad = 1e-9 * (np.abs(np.where(np.isfinite(lo), lo, 0)) + 1)
     start = np.clip(start, lo + pad, hi - pad)  # strictly inside, as trf requires
@@ -401,53 +475,12 @@ def _solve(model, data, start, lo, hi):
             xtol=1e-12,
             ftol=1e-12,
             gtol=1e-12,
-            max_nfev=2000,
+            max_nfev=max_nfev,
         )
     return res
 
 
-def fit(
-    data: ScalingData,
-    model: ScalingModel,
-    *,
-    n_min: int | None = None,
-    starts: list[np.ndarray] | None = None,
-) -> Fit:
-    """Best fit of ``model`` to the points with N ≥ ``n_min`` (default: all).
-
-    Parameters
-    ----------
-    data : ScalingData
-        Γ with its standard errors.
-    model : ScalingModel
-        The scaling form (orders, symmetry, correction).
-    n_min : int, optional
-        Smallest width used.
-    starts : list of ndarray, optional
-        Starting points of the nonlinear parameters (default :func:`starting_points`).
-
-    Returns
-    -------
-    Fit
-        The lowest-χ² solution over the starts; its ``p_value`` is ``chi2.sf`` for exact
-        errors and the estimated-variance probability when ``data.n_strips`` is given
-        (module docstring; [M5], [S2] tests/REFERENCES.md).
-    """
-    n_min = int(n_min if n_min is not None else min(data.widths()))
-    d = data.window(n_min)
-    _check(d, model)
-    lo, hi = _bounds(model, d)
-    best = None
-    for s in starts if starts is not None else starting_points(model, d):
-        res = _solve(model, d, s, lo, hi)
-        if not np.all(np.isfinite(res.fun)):
-            continue
-        chi2 = float(res.fun @ res.fun)
-        if best is None or chi2 < best[0]:
-            best = (chi2, res)
-    if best is None or best[0] >= 1e11:
-        raise FitError(f"{model.describe()}: no start converged; try other orders")
-    chi2, res = best
+def _as_fit(model, d, n_min, res, lo, hi) -> Fit:
     w = 1.0 / d.Gamma_err
     f = _project(model.design(res.x, d.x, d.N), d.Gamma, w)[2]
     err = np.full(res.x.size, math.nan)
@@ -465,13 +498,129 @@ def fit(
         model=model,
         theta=res.x,
         f=f,
-        chi2=chi2,
+        chi2=float(res.fun @ res.fun),
         dof=d.size - model.n_params,
         n_min=n_min,
         points_used=d.size,
         theta_err=err,
         data=d,
     )
+
+
+def _same_minimum(a: Fit, b: Fit) -> bool:
+    """Two converged solutions are one minimum when ν, y and x_c agree within the larger of
+    their linearised standard errors (or 1e-3 relative).  The field coefficients a_k, b_k
+    are not compared: solutions that differ only there describe the same exponents."""
+    names = a.model.nonlinear_names()
+    for j, name in enumerate(names):
+        if name not in ("nu", "y", "x_c"):
+            continue
+        s = np.nanmax([a.theta_err[j], b.theta_err[j], 0.0])
+        tol = max(s if np.isfinite(s) else 0.0, 1e-3 * (1.0 + abs(a.theta[j])))
+        if abs(a.theta[j] - b.theta[j]) > tol:
+            return False
+    return True
+
+
+def explore(
+    data: ScalingData,
+    model: ScalingModel,
+    *,
+    n_min: int | None = None,
+    starts: list[np.ndarray] | None = None,
+    per_bin: int = PER_BIN,
+) -> list[Fit]:
+    """The distinct local minima of χ² for ``model`` on the points with N ≥ ``n_min``.
+
+    Parameters
+    ----------
+    data : ScalingData
+        Γ with its standard errors.
+    model : ScalingModel
+        The scaling form (orders, symmetry, correction, fixed y).
+    n_min : int, optional
+        Smallest width used (default: all).
+    starts : list of ndarray, optional
+        Local starts instead of the global exploration (a refit from known optima).
+    per_bin : int
+        Design points optimised per ν bin (:func:`screened_starts`); the scan uses 1.
+
+    Returns
+    -------
+    list of Fit
+        One per distinct minimum, lowest χ² first.  By default the starts are the
+        screened space-filling design (:func:`screened_starts`) plus a small fixed grid
+        (ν ∈ {1.5, 2.5, 4}, y ∈ {−0.5, −2}, x_c at the weighted centre); converged
+        solutions that agree within their linearised errors are merged
+        (:func:`_same_minimum`), so branches of the form — distinct minima, each perhaps
+        acceptable — are all returned.  ``p_value`` follows the module docstring
+        ([M5], [S2] tests/REFERENCES.md).
+    """
+    n_min = int(n_min if n_min is not None else min(data.widths()))
+    d = data.window(n_min)
+    _check(d, model)
+    lo, hi = _bounds(model, d)
+    budget = EXPLORE_NFEV if starts is None else POLISH_NFEV
+    if starts is None:
+        starts = [*grid_starts(model, d), *screened_starts(model, d, per_bin)]
+    # a χ² this far above the dof is hopeless (p < 1e-4 even with 16-strip errors, [S2])
+    reach = d.size - model.n_params + 10.0 * math.sqrt(2.0 * (d.size - model.n_params)) + 20.0
+    found: list[Fit] = []
+    for s in starts:
+        res = _solve(model, d, np.asarray(s, float), lo, hi, budget)
+        if not np.all(np.isfinite(res.fun)) or float(res.fun @ res.fun) >= 1e11:
+            continue
+        if res.status == 0 and float(res.fun @ res.fun) <= reach:
+            res = _solve(model, d, res.x, lo, hi, EXPLORE_POLISH_NFEV)
+        found.append(_as_fit(model, d, n_min, res, lo, hi))
+    if not found:
+        raise FitError(f"{model.describe()}: no start converged; try other orders")
+    found.sort(key=lambda f: f.chi2)
+    minima: list[Fit] = []
+    for f in found:
+        if not any(_same_minimum(m, f) for m in minima):
+            minima.append(f)
+    return minima
+
+
+def grid_starts(model: ScalingModel, data: ScalingData) -> list[np.ndarray]:
+    """The fixed grid of starts: ν ∈ {1.5, 2.5, 4}, y ∈ {−0.5, −2}, x_c at the weighted
+    centre, other parameters 0 (a local search; :func:`explore` adds the global design)."""
+    names = model.nonlinear_names()
+    centre = float(np.average(data.x, weights=1 / data.Gamma_err**2))
+    grids = {"nu": [1.5, 2.5, 4.0], "y": [-0.5, -2.0], "x_c": [centre]}
+    axes = [grids.get(n, [0.0]) for n in names]
+    return [np.array(p, dtype=float) for p in itertools.product(*axes)]
+
+
+def fit(
+    data: ScalingData,
+    model: ScalingModel,
+    *,
+    n_min: int | None = None,
+    starts: list[np.ndarray] | None = None,
+) -> Fit:
+    """Lowest-χ² fit of ``model`` to the points with N ≥ ``n_min`` (:func:`explore`).
+
+    Parameters
+    ----------
+    data : ScalingData
+        Γ with its standard errors.
+    model : ScalingModel
+        The scaling form (orders, symmetry, correction).
+    n_min : int, optional
+        Smallest width used.
+    starts : list of ndarray, optional
+        Local starts (default: the global exploration of :func:`explore`).
+
+    Returns
+    -------
+    Fit
+        The lowest-χ² minimum; its ``p_value`` is ``chi2.sf`` for exact errors and the
+        estimated-variance probability when ``data.n_strips`` is given (module docstring;
+        [M5], [S2] tests/REFERENCES.md).
+    """
+    return explore(data, model, n_min=n_min, starts=starts)[0]
 
 
 def resample_chunk(
@@ -483,20 +632,29 @@ def resample_chunk(
     chunk: int,
     count: int,
 ) -> np.ndarray:
-    """Estimates (rows: ν, y, x_c, Γ_c) refitted to ``count`` resamples of ``data``.
+    """Estimates (ν, y, x_c, Γ_c) refitted to ``count`` resamples of ``data``.
 
     With σ exact: Γ* = Γ + σ z ([M5] tests/REFERENCES.md).  With σ̂ from ``n_strips``:
     Γ* = F̂ + σ̂ t(n − 1) about the fitted curve F̂, and σ̂* = σ̂ (χ²(n − 1)/(n − 1))^{1/2}
     ([S1], [S2]; module docstring).  Resample ``r`` of chunk ``c`` draws from ``SeedSequence(seed,
     spawn_key=(c,))``, so the result does not depend on how chunks are spread over workers.
     A refit that fails gives a row of NaN (counted by the caller).
+
+    ``theta0`` of shape (k,) gives an array (count, 4).  Of shape (B, k) — the optima of B
+    branches, the first the lowest χ² — every resample is refitted from each branch's
+    optimum, and the result (count, B + 1, 4) holds in slot 0 the refit of lowest χ² (the
+    resample's global answer, which may change branch) and in slot b + 1 the refit from
+    branch b (that branch's own spread).  F̂ is the first branch's curve.
     """
+    theta0 = np.asarray(theta0, float)
+    single = theta0.ndim == 1
+    thetas = theta0[None, :] if single else theta0
     rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(chunk,)))
     d = data.window(n_min)
-    out = np.full((count, len(QUANTITIES)), math.nan)
+    out = np.full((count, thetas.shape[0] + 1, len(QUANTITIES)), math.nan)
     if d.n_strips is not None:
-        # the fitted curve at θ0 (f profiled out exactly as in the fit)
-        a = model.design(theta0, d.x, d.N)
+        # the fitted curve at the best optimum (f profiled out exactly as in the fit)
+        a = model.design(thetas[0], d.x, d.N)
         curve = a @ _project(a, d.Gamma, 1.0 / d.Gamma_err)[2]
     for r in range(count):
         z = rng.standard_normal(d.size)
@@ -506,13 +664,18 @@ def resample_chunk(
             # t = z / √(χ²_ν/ν) is Student t(ν); the second draw gives the refit's weights
             u, c = _variance_ratios(rng, d.n_strips, 2)
             dr = d.with_gamma(curve + d.Gamma_err * z / np.sqrt(u), d.Gamma_err * np.sqrt(c))
-        try:
-            fr = fit(dr, model, n_min=n_min, starts=[theta0])
-        except FitError:
-            continue
-        v = fr.values()
-        out[r] = [v[q] for q in QUANTITIES]
-    return out
+        best = math.inf
+        for b, th in enumerate(thetas):
+            try:
+                fr = fit(dr, model, n_min=n_min, starts=[th])
+            except FitError:
+                continue
+            v = fr.values()
+            out[r, b + 1] = [v[q] for q in QUANTITIES]
+            if fr.chi2 < best:
+                best = fr.chi2
+                out[r, 0] = out[r, b + 1]
+    return out[:, 1] if single else out
 
 
 @dataclass
@@ -586,3 +749,31 @@ def resampled_intervals(
     else:
         parts = list(mapper(resample_chunk, jobs))
     return intervals(np.concatenate(parts, axis=0), level)
+
+
+def branch_intervals(
+    data: ScalingData,
+    branches: list[Fit],
+    *,
+    resamples: int = 1000,
+    seed: int = 0,
+    level: float = 0.95,
+    mapper=None,
+) -> tuple[Intervals, list[Intervals]]:
+    """Resampled intervals when a form has several acceptable minima (branches).
+
+    Every resample is refitted from every branch's optimum (:func:`resample_chunk` with a
+    (B, k) ``theta0``).  Returns the intervals of the lowest-χ² refit per resample (the
+    procedure's answer, free to change branch) and each branch's own intervals.
+    """
+    best = branches[0]
+    thetas = np.stack([b.theta for b in branches])
+    jobs = [(data, best.model, best.n_min, thetas, seed, c, k) for c, k in chunks(resamples)]
+    if mapper is None:
+        parts = [resample_chunk(*j) for j in jobs]
+    else:
+        parts = list(mapper(resample_chunk, jobs))
+    est = np.concatenate(parts, axis=0)
+    return intervals(est[:, 0], level), [
+        intervals(est[:, b + 1], level) for b in range(len(branches))
+    ]

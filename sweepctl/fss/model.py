@@ -71,10 +71,17 @@ class ScalingModel:
     orders: Orders = Orders()
     symmetric: bool = False
     correction: str = "power"
+    #: the irrelevant exponent held at this value instead of fitted (correction
+    #: sensitivity, :mod:`sweepctl.fss.procedure`); ``None``: y is a fit parameter
+    fixed_y: float | None = None
 
     def __post_init__(self) -> None:
         if self.correction not in CORRECTIONS:
             raise ValueError(f"correction {self.correction!r}: use one of {CORRECTIONS}")
+        if self.fixed_y is not None and not (self.has_irrelevant and self.correction == "power"):
+            raise ValueError("a fixed y needs an irrelevant field (n_I > 0) with power correction")
+        if self.fixed_y is not None and not self.fixed_y < 0:
+            raise ValueError(f"fixed y = {self.fixed_y:g}: an irrelevant exponent must be < 0")
 
     # -- parameter layout -----------------------------------------------------------
     @property
@@ -83,7 +90,8 @@ class ScalingModel:
 
     @property
     def has_y(self) -> bool:
-        return self.has_irrelevant and self.correction == "power"
+        """Whether y is a fit parameter (a power-law correction with y not held fixed)."""
+        return self.has_irrelevant and self.correction == "power" and self.fixed_y is None
 
     def f_powers(self) -> list[tuple[int, int]]:
         """(i, j) of the linear coefficients f_ij, in column order."""
@@ -117,6 +125,8 @@ class ScalingModel:
     def describe(self) -> str:
         kind = "symmetric" if self.symmetric else "general"
         corr = "" if not self.has_irrelevant else f", {self.correction} correction"
+        if self.fixed_y is not None:
+            corr += f", y fixed at {self.fixed_y:g}"
         return f"orders {self.orders.label()} ({kind}{corr})"
 
     # -- evaluation -----------------------------------------------------------------
@@ -129,22 +139,41 @@ class ScalingModel:
         """Scaling variables ψ_0 and ψ_1 at the points (ψ_1 = 0 without a correction)."""
         p = self.unpack(theta)
         w = x - p.get("x_c", 0.0)
+        log_n = np.log(n)
+        # powers of w by repeated products: this runs in every residual evaluation
+        top = max([1, *self.a_powers(), *self.b_powers()])
+        wk = [np.ones_like(w), w]
+        for _ in range(2, top + 1):
+            wk.append(wk[-1] * w)
         u0 = w.copy()
         for k in self.a_powers():
-            u0 = u0 + p[f"a{k}"] * w**k
-        psi0 = u0 * n ** (1.0 / p["nu"])
+            u0 += p[f"a{k}"] * wk[k]
+        psi0 = u0 * np.exp(log_n / p["nu"])
         if not self.has_irrelevant:
             return psi0, np.zeros_like(psi0)
         u1 = np.ones_like(w)
         for k in self.b_powers():
-            u1 = u1 + p[f"b{k}"] * w**k
-        scale = n ** p["y"] if self.correction == "power" else 1.0 / np.log(n)
+            u1 += p[f"b{k}"] * wk[k]
+        if self.correction == "log":
+            scale = 1.0 / log_n
+        else:
+            scale = np.exp(log_n * (p["y"] if self.fixed_y is None else self.fixed_y))
         return psi0, u1 * scale
 
     def design(self, theta: np.ndarray, x: np.ndarray, n: np.ndarray) -> np.ndarray:
         """Columns ψ_0^i ψ_1^j for the f_ij of :meth:`f_powers`."""
         psi0, psi1 = self.fields(theta, x, n)
-        return np.stack([psi0**i * psi1**j for i, j in self.f_powers()], axis=1)
+        p0 = [np.ones_like(psi0)]
+        for _ in range(self.orders.n_R):
+            p0.append(p0[-1] * psi0)
+        p1 = [np.ones_like(psi1)]
+        for _ in range(self.orders.n_I):
+            p1.append(p1[-1] * psi1)
+        powers = self.f_powers()
+        out = np.empty((psi0.size, len(powers)))
+        for c, (i, j) in enumerate(powers):
+            np.multiply(p0[i], p1[j], out=out[:, c])
+        return out
 
     def evaluate(
         self, theta: np.ndarray, f: np.ndarray, x: np.ndarray, n: np.ndarray

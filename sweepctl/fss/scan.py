@@ -11,14 +11,17 @@ from __future__ import annotations
 
 import itertools
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
-from sweepctl.fss.fit import Fit, FitError, ScalingData, fit
+from sweepctl.fss.fit import Fit, FitError, ScalingData, explore
 from sweepctl.fss.model import Orders, ScalingModel
 
 #: goodness-of-fit probability a fit needs to be acceptable
 P_ACCEPT = 0.1
 Z95 = 1.959963984540054  # two-sided 95 % normal quantile
+#: design points optimised per ν bin in a scan row (the chosen window is explored again
+#: more thoroughly for its branches, :mod:`sweepctl.fss.procedure`)
+SCAN_PER_BIN = 1
 
 
 @dataclass
@@ -27,6 +30,8 @@ class ScanRow:
     n_min: int
     fit: Fit | None
     error: str = ""
+    #: every distinct minimum found (lowest χ² first; ``fit`` is the first)
+    minima: list[Fit] = field(default_factory=list)
 
     @property
     def acceptable(self) -> bool:
@@ -80,7 +85,8 @@ def scan(
     jobs = [(m, n) for m, n in jobs if len([w for w in widths if w >= n]) >= need[m]]
     for k, (m, n_min) in enumerate(jobs):
         try:
-            rows.append(ScanRow(m, n_min, fit(data, m, n_min=n_min)))
+            minima = explore(data, m, n_min=n_min, per_bin=SCAN_PER_BIN)
+            rows.append(ScanRow(m, n_min, minima[0], minima=minima))
         except FitError as exc:
             rows.append(ScanRow(m, n_min, None, str(exc)))
         if progress is not None:
@@ -92,19 +98,34 @@ def _overlap(a: tuple[float, float], b: tuple[float, float]) -> bool:
     return max(a[0], b[0]) <= min(a[1], b[1])
 
 
-def stable_choice(rows: list[ScanRow]) -> ScanRow | None:
-    """The lowest-order power-law model whose ν is stable from an acceptable N_min on.
+def _track(groups: list[list[tuple[float, float]]]) -> float | None:
+    """A ν lying in one interval of every group (pairwise overlap of one interval per
+    group is, on a line, a common point), or None."""
+    ends = sorted(lo for g in groups for lo, _ in g)
+    for v in ends:
+        if all(any(lo <= v <= hi for lo, hi in g) for g in groups):
+            return v
+    return None
 
-    For each model (fewest parameters first) take the smallest N_min such that every
-    window from it upwards is acceptable (p ≥ 0.1, no parameter on a bound — e.g. y → 0,
-    where the irrelevant field merges with the constant) and the linearised 95 % ν
-    intervals of those windows and of the next smaller window overlap pairwise (ν does
-    not move when the smallest widths are dropped).  The first model with such a window
-    is returned at that window.
-    """
+
+def _cis(row: ScanRow, acceptable_only: bool) -> list[tuple[float, float]]:
+    out = []
+    for f in row.minima or ([row.fit] if row.fit is not None else []):
+        if acceptable_only and not (f.p_value >= P_ACCEPT and not f.at_bound):
+            continue
+        nu, s = f.values()["nu"], f.linear_error("nu")
+        if math.isfinite(s):
+            out.append((nu - Z95 * s, nu + Z95 * s))
+    return out
+
+
+def stable_windows(rows: list[ScanRow]) -> list[ScanRow]:
+    """Each power-law model's stable window (fewest parameters first); see
+    :func:`stable_choice` for the rule."""
     by_model: dict[ScalingModel, list[ScanRow]] = {}
     for r in rows:
         by_model.setdefault(r.model, []).append(r)
+    out = []
     for m in sorted(by_model, key=lambda m: (m.n_params, m.orders.label())):
         if m.correction != "power":
             continue
@@ -113,11 +134,26 @@ def stable_choice(rows: list[ScanRow]) -> ScanRow | None:
             upward = wins[k:]
             if not all(w.acceptable for w in upward):
                 continue
-            group = upward + ([wins[k - 1]] if k > 0 and wins[k - 1].fit is not None else [])
-            cis = [w.nu_ci() for w in group]
-            if all(math.isfinite(c[0]) and math.isfinite(c[1]) for c in cis) and all(
-                _overlap(a, b) for a, b in itertools.combinations(cis, 2)
-            ):
-                return r
+            groups = [_cis(w, acceptable_only=True) for w in upward]
+            if k > 0 and wins[k - 1].fit is not None:
+                groups.append(_cis(wins[k - 1], acceptable_only=False))
+            if all(groups) and _track(groups) is not None:
+                out.append(r)
             break  # a larger N_min would only drop the evidence of stability
-    return None
+    return out
+
+
+def stable_choice(rows: list[ScanRow]) -> ScanRow | None:
+    """The lowest-order power-law model whose ν is stable from an acceptable N_min on.
+
+    For each model (fewest parameters first) take the smallest N_min such that every
+    window from it upwards is acceptable (p ≥ 0.1, no parameter on a bound — e.g. y → 0,
+    where the irrelevant field merges with the constant) and ν does not move when the
+    smallest widths are dropped: some value of ν lies in the linearised 95 % interval of
+    one acceptable minimum (branch) of each of those windows and of one minimum of the
+    next smaller window.  Tracking branches matters: when a form has two minima, the
+    lowest χ² can jump between them from one window to the next while each branch is
+    itself stable.  The first model with such a window is returned at that window.
+    """
+    wins = stable_windows(rows)
+    return wins[0] if wins else None
