@@ -523,6 +523,15 @@ def run(
             help="Compact the store's part files once this many small ones exist.",
         ),
     ] = 64,
+    flush_seconds: Annotated[
+        float,
+        typer.Option(
+            "--flush-seconds",
+            min=0.0,
+            help="Store arrived replicas (and log their events) at least this often; "
+            "0 stores each one as it arrives.",
+        ),
+    ] = 5.0,
 ) -> None:
     """Run or continue a campaign until every point reaches its precision (or cap)."""
     from sweepctl.bench import cost_model
@@ -550,6 +559,7 @@ def run(
         lease_wait=_seconds(lease_wait, "--lease-wait") or 0.0,
         dashboard=_dashboard(dashboard),
         compact_at=compact_at,
+        flush_seconds=flush_seconds,
     )
     if cluster:
         from sweepctl.cluster import load_profile, make_cluster
@@ -1120,6 +1130,22 @@ def _disorder(text: str | None):
     return pb, po
 
 
+MaxOrdersOpt = Annotated[str, typer.Option("--max-orders", help="Largest orders of the scan.")]
+FitWorkersOpt = Annotated[
+    int | None,
+    typer.Option(
+        "--workers",
+        min=0,
+        help="Resampling: 0 in this process, N local Dask workers (default: in this "
+        "process unless the work is large).",
+    ),
+]
+ResamplesOpt = Annotated[
+    int, typer.Option("--resamples", min=20, help="Resampled refits for the intervals.")
+]
+FitSeedOpt = Annotated[int, typer.Option("--seed", min=0, help="Seed of the resampling.")]
+
+
 def _fit_request(orders, n_min, symmetric, correction, disorder, epsilon, resamples, seed):
     from sweepctl.analysis import FitRequest
 
@@ -1208,10 +1234,8 @@ def fit_cmd(
         str | None, typer.Option("--disorder", help="Slice P_BLOCK,P_OPEN of the table.")
     ] = None,
     epsilon: Annotated[float | None, typer.Option("--epsilon", help="Slice ε.")] = None,
-    resamples: Annotated[
-        int, typer.Option("--resamples", min=20, help="Resampled refits for the intervals.")
-    ] = 1000,
-    seed: Annotated[int, typer.Option("--seed", min=0, help="Seed of the resampling.")] = 0,
+    resamples: ResamplesOpt = 1000,
+    seed: FitSeedOpt = 0,
     json_out: Annotated[
         bool, typer.Option("--json", help="Print the fit as JSON instead of the tables.")
     ] = False,
@@ -1221,18 +1245,8 @@ def fit_cmd(
     scan_: Annotated[
         bool, typer.Option("--scan", help="Also print every form and N_min window tried.")
     ] = False,
-    max_orders: Annotated[
-        str, typer.Option("--max-orders", help="Largest orders of the scan.")
-    ] = "4,1,3,1",
-    workers: Annotated[
-        int | None,
-        typer.Option(
-            "--workers",
-            min=0,
-            help="Resampling: 0 in this process, N local Dask workers (default: in this "
-            "process unless the work is large).",
-        ),
-    ] = None,
+    max_orders: MaxOrdersOpt = "4,1,3,1",
+    workers: FitWorkersOpt = None,
     scheduler: SchedulerOpt = None,
     scheduler_file: SchedulerFileOpt = None,
 ) -> None:
@@ -1326,22 +1340,10 @@ def report_cmd(
     ] = None,
     n_min: Annotated[int | None, typer.Option("--n-min", help="Smallest width used.")] = None,
     correction: Annotated[str, typer.Option("--correction", help="power or log.")] = "power",
-    resamples: Annotated[
-        int, typer.Option("--resamples", min=20, help="Resampled refits for the intervals.")
-    ] = 1000,
-    seed: Annotated[int, typer.Option("--seed", min=0, help="Seed of the resampling.")] = 0,
-    max_orders: Annotated[
-        str, typer.Option("--max-orders", help="Largest orders of the scan.")
-    ] = "4,1,3,1",
-    workers: Annotated[
-        int | None,
-        typer.Option(
-            "--workers",
-            min=0,
-            help="Resampling: 0 in this process, N local Dask workers (default: in this "
-            "process unless the work is large).",
-        ),
-    ] = None,
+    resamples: ResamplesOpt = 1000,
+    seed: FitSeedOpt = 0,
+    max_orders: MaxOrdersOpt = "4,1,3,1",
+    workers: FitWorkersOpt = None,
     scheduler: SchedulerOpt = None,
     scheduler_file: SchedulerFileOpt = None,
 ) -> None:

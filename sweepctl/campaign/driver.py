@@ -166,6 +166,7 @@ class Driver:
         self._in_flush = False
         self._closing = False
         self._stop_requested = False
+        self._deferring = False
 
     # -- the run ------------------------------------------------------------------------
     def run(self) -> RunResult:
@@ -224,14 +225,19 @@ class Driver:
             with self._signals():
                 try:
                     self._connect()
-                    for pp in todo:
-                        self.submit(pp)
+                    with self._deferring_signals():
+                        for pp in todo:
+                            self.submit(pp)
                     self._say_progress()
                     for fut in self.futures:
-                        if fut.status == "error":
-                            self.error(fut)
-                        else:
-                            self.result(fut)
+                        # a signal landing inside a Dask client call would unwind through
+                        # its event-loop bridge (which logs a spurious traceback): while a
+                        # result is handled, signals are held and acted on right after
+                        with self._deferring_signals():
+                            if fut.status == "error":
+                                self.error(fut)
+                            else:
+                                self.result(fut)
                 except KeyboardInterrupt:
                     if self.conn is not None and self.conn.fatal:
                         self.failed_points += 1
@@ -288,21 +294,22 @@ class Driver:
         self.conn = Connection(self.options)
         self.conn.client.subscribe_topic("sweepctl", self._on_worker_event)
         self.conn.on_event = lambda m: self._on_worker_event((None, m))
-        # written at once: whoever watches the store learns the worker processes early
-        self.store.append_events(
-            [
-                {
-                    "time": now_iso(),
-                    "event": "cluster",
-                    "kind": self.conn.kind,
-                    "workers": self.conn.worker_pids(),
-                }
-            ]
-        )
+        # written at once: whoever watches the store learns the worker processes (and the
+        # dashboard's address) early
+        first = [
+            {
+                "time": now_iso(),
+                "event": "cluster",
+                "kind": self.conn.kind,
+                "workers": self.conn.worker_pids(),
+            }
+        ]
+        if self.options.dashboard:
+            first.append({"time": now_iso(), "event": "dashboard", "address": self.conn.dashboard})
+        self.store.append_events(first)
         self.say({"kind": "log", "message": f"connected: {self.conn.kind}"})
         if self.options.dashboard:
             where = self.conn.dashboard or "not served (the scheduler has no HTTP server)"
-            self._event({"event": "dashboard", "address": self.conn.dashboard})
             self.say({"kind": "log", "message": f"dashboard: {where}"})
         self.futures = as_completed(with_results=False)
 
@@ -384,8 +391,6 @@ class Driver:
         if (
             len(self._rows) >= self.options.flush_rows
             or time.perf_counter() - self._last_flush >= self.options.flush_seconds
-            # fault-injection hook for tests: every row is a batch flush, however fast the run
-            or os.environ.get("SWEEPCTL_FAULT") == "signal-in-flush"
         ):
             self.flush()
         self._say_progress()
@@ -468,11 +473,23 @@ class Driver:
         return {"files_read": read, "files_written": written} if read else None
 
     @contextlib.contextmanager
+    def _deferring_signals(self):
+        """Hold TERM/INT while the block runs; raise the held stop once it is done."""
+        self._deferring = True
+        try:
+            yield
+        finally:
+            self._deferring = False
+        if self._stop_requested and not self._closing:
+            self._stop_requested = False
+            raise KeyboardInterrupt
+
+    @contextlib.contextmanager
     def _signals(self):
         """TERM (batch systems send it before KILL) and INT stop the run, but not mid-flush."""
 
         def on_signal(signum, frame):
-            if self._in_flush or self._closing:
+            if self._in_flush or self._closing or self._deferring:
                 self._stop_requested = True
                 return
             raise KeyboardInterrupt

@@ -47,9 +47,10 @@ __all__ = [
     "slice_key",
 ]
 
-#: relative error of Γ ≈ √(c·N/(Γ·L)) for L measured strip-layers (c ≈ 0.6–0.8 near
-#: x = 0, measured here; no published source). Used for plans and estimates only.
-ERROR_CONSTANT = 0.7
+#: relative error of Γ ≈ √(c·N/(Γ·L)) for L measured strip-layers: c = k = 1.00 ± 0.014 of
+#: the strip variance k·N·Γ/L ([R1], [M3] of tests/REFERENCES.md; measured here on the clean
+#: network, no published source). Used for plans and estimates only.
+ERROR_CONSTANT = 1.0
 #: Γ assumed by plans before any data (near the critical value ≈ 0.8–0.9).
 GAMMA_GUESS = 0.85
 _MARGIN = 1.2

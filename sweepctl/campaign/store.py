@@ -757,19 +757,7 @@ class Store:
         # sorts where its first input did, so the reader's file order barely changes
         stem = group[0].stem.split("~", 1)[0]
         final = self.replicas_dir / f"{stem}~c{uuid.uuid4().hex[:10]}.parquet"
-        tmp = self.replicas_dir / f".{final.name}.tmp-{uuid.uuid4().hex[:8]}"
-        pq.write_table(table, tmp, compression="zstd")
-        with open(tmp, "rb") as fh:
-            os.fsync(fh.fileno())
-        if fault == "kill-compact-written":
-            os.kill(os.getpid(), signal.SIGKILL)  # fault-injection hook for tests
-        try:
-            self._guard()
-        except BaseException:
-            tmp.unlink(missing_ok=True)
-            raise
-        os.replace(tmp, final)
-        _fsync_dir(self.replicas_dir)
+        self._write_part(table, final, kill_before_rename=fault == "kill-compact-written")
         if fault == "kill-compact-replaced":
             os.kill(os.getpid(), signal.SIGKILL)
         for i, p in enumerate(group):
@@ -829,11 +817,18 @@ class Store:
         table = table.replace_schema_metadata(meta)
         name = f"part-{time.strftime('%Y%m%dT%H%M%S')}-{uuid.uuid4().hex[:10]}.parquet"
         final = self.replicas_dir / name
-        tmp = self.replicas_dir / f".{name}.tmp-{uuid.uuid4().hex[:8]}"
+        kill = os.environ.get("SWEEPCTL_FAULT") == "kill-while-writing"
+        self._write_part(table, final, kill_before_rename=kill)
+        return final
+
+    def _write_part(self, table: pa.Table, final: Path, kill_before_rename: bool) -> None:
+        """Write ``table`` to a temporary, fsync it, and rename it to ``final`` only while
+        this driver still holds the lease; readers never see a partial part file."""
+        tmp = self.replicas_dir / f".{final.name}.tmp-{uuid.uuid4().hex[:8]}"
         pq.write_table(table, tmp, compression="zstd")
         with open(tmp, "rb") as fh:
             os.fsync(fh.fileno())
-        if os.environ.get("SWEEPCTL_FAULT") == "kill-while-writing":
+        if kill_before_rename:
             os.kill(os.getpid(), signal.SIGKILL)  # fault-injection hook for tests
         try:
             self._guard()
@@ -842,7 +837,6 @@ class Store:
             raise
         os.replace(tmp, final)
         _fsync_dir(self.replicas_dir)
-        return final
 
     def read_replicas(self, columns: list[str] | None = None) -> pa.Table:
         """All replica rows (pinned schema), one per (point, replica), in file order.

@@ -64,14 +64,15 @@ def test_the_same_replica_with_different_numbers_is_refused(reference_store, tmp
 def test_a_signal_inside_the_flush_writes_no_row_twice(tmp_path):
     # Fault injection: the driver sends itself SIGTERM right after a part file is in place
     # and before its checkpoints are removed and the buffer cleared (a batch flush, not
-    # the final one: under this fault the driver flushes after every finished replica).
+    # the final one: with --flush-seconds 0 every finished replica is a batch flush).
     from tests.campaign.test_faults import FAULT
 
     recipe = write_recipe(tmp_path / "recipe.toml", {**FAULT, "axes": {"widths": [2, 3]}})
     ref, store = tmp_path / "ref", tmp_path / "store"
     assert cli("run", recipe, "--store", ref, "--workers", "2").returncode == 0
     proc = cli(
-        "run", recipe, "--store", store, "--workers", "2", env={"SWEEPCTL_FAULT": "signal-in-flush"}
+        *("run", recipe, store, "--workers", "2", "--flush-seconds", "0"),
+        env={"SWEEPCTL_FAULT": "signal-in-flush"},
     )
     assert proc.returncode == 130, proc.stdout + proc.stderr
     assert events(store)[-1]["event"] == "interrupted"
