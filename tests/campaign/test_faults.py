@@ -64,7 +64,11 @@ def test_worker_killed_mid_campaign(fault_reference, tmp_path, launched):
     recipe = write_recipe(tmp_path / "recipe.toml", FAULT)
     store = tmp_path / "store"
     stores.append(store)
-    drv = start_cli("run", recipe, "--store", store, "--workers", "2", log=tmp_path / "log")
+    # --flush-seconds 0: every finished replica is logged at once, so the kill lands after
+    # 3 of FAULT's ~32 replicas however fast the machine
+    drv = start_cli(
+        *("run", recipe, store, "--workers", "2", "--flush-seconds", "0"), log=tmp_path / "log"
+    )
     procs.append(drv)
     wait_until(lambda: finished(store) >= 3, 120, "three finished replicas")
     victim = worker_pids(store)[0]
@@ -88,12 +92,13 @@ def test_driver_killed_then_rerun(fault_reference, tmp_path, launched):
     recipe = write_recipe(tmp_path / "recipe.toml", FAULT)
     store = tmp_path / "store"
     stores.append(store)
-    drv = start_cli("run", recipe, "--store", store, "--workers", "2")
+    drv = start_cli("run", recipe, store, "--workers", "2", "--flush-seconds", "0")
     procs.append(drv)
     wait_until(lambda: list((store / "replicas").glob("part-*.parquet")), 120, "a written batch")
     drv.send_signal(signal.SIGKILL)
     drv.wait(timeout=30)
     kill_pids(worker_pids(store))  # its orphaned workers
+    assert not any(e.get("event") == "run-end" for e in events(store))  # killed mid-campaign
     n_before = len(list((store / "replicas").glob("part-*.parquet")))
     assert n_before >= 1
     proc = cli("run", recipe, "--store", store, "--workers", "2")

@@ -78,8 +78,10 @@ def test_driver_compacts_past_the_threshold(many_parts, tmp_path):
     pd.testing.assert_frame_equal(merged(store), merged(src), check_exact=True)
 
 
-def test_checkpoints_orphaned_by_a_kill_after_the_rows_are_removed(many_parts, tmp_path):
-    _, recipe = many_parts
+def test_checkpoints_orphaned_by_a_kill_after_the_rows_are_removed(tmp_path):
+    # a checkpoint every 10 ms: even the shortest replica on a fast machine leaves one
+    replica = {**FAULT["replica"], "checkpoint_seconds": 0.01}
+    recipe = write_recipe(tmp_path / "recipe.toml", {**FAULT, "replica": replica})
     store = tmp_path / "store"
     # SIGKILL right after the first batch of rows is stored, before its checkpoints go
     proc = cli(

@@ -15,12 +15,14 @@ import pytest
 from sweepctl.campaign.store import Store, StoreLocked, read_lease
 from tests.campaign.helpers import cli, events, kill_pids, wait_until, worker_pids, write_recipe
 
-# A contender: waits for the start signal, tries to take the lease, says which, holds it.
+# A contender: says it is ready, waits for the start signal, tries to take the lease, says
+# which; the winner holds it until told to release (so a late contender cannot win after it).
 _CONTENDER = """
 import os, sys, time
 from pathlib import Path
 from sweepctl.campaign.store import Store, StoreLocked
-root, go = Path(sys.argv[1]), Path(sys.argv[2])
+root, go, ready, release = (Path(a) for a in sys.argv[1:5])
+ready.touch()
 while not go.exists():
     time.sleep(0.001)
 st = Store(root)
@@ -31,7 +33,8 @@ except StoreLocked:
     sys.exit(0)
 print("WON", flush=True)
 st.append_events([{"event": "won", "pid": os.getpid()}])
-time.sleep(2.0)
+while not release.exists():
+    time.sleep(0.01)
 st.release_lock()
 """
 
@@ -50,19 +53,23 @@ def stale_lease(store: Path, host: str = "node-b", age: float = 3600.0, expiry: 
 def test_two_contenders_on_a_stale_lease_exactly_one_wins(tmp_path, round_):
     store = tmp_path / "store"
     stale_lease(store)
-    go = tmp_path / "go"
+    go, release = tmp_path / "go", tmp_path / "release"
+    ready = [tmp_path / f"ready-{i}" for i in range(2)]
     env = {**os.environ, "SWEEPCTL_FAULT": "slow-takeover"}  # both see it stale first
     procs = [
         subprocess.Popen(
-            [sys.executable, "-c", _CONTENDER, str(store), str(go)],
+            [sys.executable, "-c", _CONTENDER, str(store), str(go), str(r), str(release)],
             stdout=subprocess.PIPE,
             text=True,
             env=env,
         )
-        for _ in range(2)
+        for r in ready
     ]
-    time.sleep(1.5)  # both imported and spinning on the start signal
+    wait_until(lambda: all(r.exists() for r in ready), 60, "both contenders ready")
     go.touch()
+    # the loser exits at once; a second winner (the bug) would wait for the release too
+    wait_until(lambda: any(p.poll() is not None for p in procs), 60, "a contender to lose")
+    release.touch()
     outs = sorted(p.communicate(timeout=60)[0].strip() for p in procs)
     assert outs == ["LOCKED", "WON"]
     st = read_lease(store / "lease")
@@ -105,11 +112,13 @@ def test_lease_wait_takes_over_when_the_lease_expires(tmp_path):
 def test_heartbeat_keeps_a_short_lease_and_a_frozen_holder_stops_writing(tmp_path):
     store = Store(tmp_path / "store")
     store.root.mkdir()
-    lease = store.acquire_lock(expiry=1.0)
+    # a 3-second lease, renewed every 0.3 s: a loaded machine may delay some heartbeats, but
+    # not by a whole expiry
+    lease = store.acquire_lock(expiry=3.0)
     first = read_lease(store.lease_dir)
-    time.sleep(2.5)  # 2.5 expiries: only the heartbeat keeps it
+    time.sleep(7.5)  # 2.5 expiries: only the heartbeat keeps it
     st = read_lease(store.lease_dir)
-    assert st.generation == first.generation and st.renewed > first.renewed + 1.5
+    assert st.generation == first.generation and st.renewed > first.renewed + 4.5
     assert not st.free()
     with pytest.raises(StoreLocked):
         Store(store.root).acquire_lock(expiry=1.0)  # another driver (same host, live pid)
@@ -117,7 +126,7 @@ def test_heartbeat_keeps_a_short_lease_and_a_frozen_holder_stops_writing(tmp_pat
     # let a driver in another process take over
     lease._stop.set()
     lease._thread.join()
-    time.sleep(1.2)
+    time.sleep(3.6)  # 1.2 expiries
     out = subprocess.run(
         [
             sys.executable,

@@ -16,14 +16,15 @@ def status(store) -> dict:
     return json.loads(proc.stdout)
 
 
-# FAULT with four times the replicas ((0.001 / 0.0005)^2): still running after two flushes
+# FAULT with four times the replicas ((0.001 / 0.0005)^2, ~130 replicas, ~45 s on two idle
+# cores): with --flush-seconds 0 the second part file comes after two of them
 LONGER = {**FAULT, "precision": {"target": 0.0005, "max_layers": 3_680_000}}
 
 
 def test_status_while_running_after_a_kill_and_when_done(tmp_path):
     recipe = write_recipe(tmp_path / "r.toml", LONGER)
     store = tmp_path / "store"
-    drv = start_cli("run", recipe, "--store", store, "--workers", "2")
+    drv = start_cli("run", recipe, store, "--workers", "2", "--flush-seconds", "0")
     try:
         wait_until(
             lambda: len(list((store / "replicas").glob("part-*.parquet"))) >= 2, 120, "two batches"
