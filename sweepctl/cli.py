@@ -1383,6 +1383,16 @@ def main() -> None:
         if _DEBUG["on"]:
             raise
         _fail(str(exc))
+    except OSError as exc:
+        # a path the system refused (not a directory, no permission, disk full): one line
+        # naming it; what is stored is written atomically, so nothing stored is damaged
+        if _DEBUG["on"]:
+            raise
+        where = f"{exc.filename}: " if exc.filename else ""
+        _fail(
+            f"{where}{exc.strerror or exc}; check the path and its permissions "
+            "(--debug shows where it happened)"
+        )
     except KeyboardInterrupt:
         err_console.print("interrupted")
         sys.exit(130)

@@ -610,7 +610,7 @@ class Store:
     def require(self) -> None:
         """Raise a clear error unless this is a store."""
         if not self.root.exists():
-            raise StoreError(f"{self.root}: no such directory; give the --store of a campaign")
+            raise StoreError(f"{self.root}: no such directory; give a campaign's store directory")
         if not self.exists():
             raise StoreError(f"{self.root}: not a sweepctl store (no campaign.json)")
 
