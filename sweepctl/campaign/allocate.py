@@ -37,6 +37,9 @@ spent.  v_i is the sample variance of the point's own strips (≥ 51 of them bef
 point may stop, [S1]): the law Var = k·N·Γ/L of [R1] holds on the clean network, the
 sample variance also with disorder.
 
+A slice without a fit (too few data for any acceptable form) grows uniformly, each
+point by ``growth − 1`` times its replicas: a longer pilot.
+
 The floor
 ---------
 A point whose relative error misses ``precision.target`` (or that has fewer than the
@@ -61,6 +64,7 @@ import numpy as np
 from sweepctl.campaign.plan import next_target
 from sweepctl.campaign.recipe import Point
 from sweepctl.fss.fit import Fit, ScalingData, jacobian
+from sweepctl.fss.procedure import DEFAULT_MAX_ORDERS, stable_forms
 from sweepctl.fss.scan import Z95
 
 __all__ = [
@@ -72,6 +76,7 @@ __all__ = [
     "SliceDesign",
     "SliceState",
     "allocate",
+    "fit_slice",
     "slice_data",
 ]
 
@@ -131,6 +136,23 @@ class SliceState:
     points: tuple[PointState, ...]
     fit: Fit | None
     nu_halfwidth: float
+
+
+#: largest orders the allocator's form choice scans (those of ``sweepctl fit``)
+MAX_ORDERS = DEFAULT_MAX_ORDERS
+
+
+def fit_slice(data: ScalingData, symmetric: bool) -> Fit | None:
+    """The slice's fit the allocator linearises: the procedure's stable choice
+    (:func:`sweepctl.fss.procedure.stable_forms`: every form up to :data:`MAX_ORDERS` at
+    every N_min, as ``sweepctl fit`` scans), or None when no form is stable yet.
+
+    Deterministic (fixed design seeds), so a replay of the rounds fits the same form.
+    """
+    if len(data.widths()) < 2:
+        return None
+    stable = stable_forms(data, symmetric, MAX_ORDERS)
+    return stable[0].fit if stable else None
 
 
 def slice_data(points: tuple[PointState, ...] | list[PointState]) -> ScalingData:
@@ -276,6 +298,23 @@ def allocate(
         wanted[p.point.key] += add
         left -= add * p.replica_seconds
         spent += add * p.replica_seconds
+
+    # a slice that cannot be fitted yet grows uniformly (a longer pilot), within the round
+    # size and the budget
+    for s in slices:
+        if s.fit is not None:
+            continue
+        for p in sorted(s.points, key=lambda q: q.point.key):
+            add = min(
+                math.ceil((growth - 1.0) * p.replicas),
+                p.max_replicas - wanted[p.point.key],
+            )
+            afford = int(left // p.replica_seconds) if p.replica_seconds > 0 else add
+            short_of_budget = short_of_budget or afford < add
+            add = max(0, min(add, afford))
+            wanted[p.point.key] += add
+            left -= add * p.replica_seconds
+            spent += add * p.replica_seconds
 
     # then ν: the design of every fitted slice, the floor's replicas included
     designs: dict[str, SliceDesign] = {}
