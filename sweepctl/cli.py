@@ -584,6 +584,8 @@ def run(
         f"{res.done} of {res.points} points done ({res.capped} stopped at the cap), "
         f"{res.failed} failed; {res.computed} replicas computed in {_duration(res.seconds)}"
     )
+    if res.goal_reason is not None:
+        console.print(f"goal on nu: {res.goal_reason}")
     if res.interrupted:
         console.print(
             f"interrupted — run the same command again to continue: "
