@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import json
+
 from tests.campaign.helpers import cli, events, write_recipe
 from tests.campaign.test_rehearsal import _calibration, _rows
 
@@ -33,6 +35,15 @@ def test_a_goal_campaign_stores_the_same_replicas_when_cut_and_resumed(tmp_path)
     rounds = _rounds(whole)
     assert [d["round"] for d in rounds] == list(range(1, len(rounds) + 1)) and len(rounds) >= 2
     assert [d["reason"] for d in rounds] == [None] * (len(rounds) - 1) + ["goal met"]
+    # status replays the rounds: the goal, each slice's ν ± half-width, the stop reason
+    proc = cli("status", whole, "--json", "--calibration", cal)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    goal = json.loads(proc.stdout)["totals"]["goal"]
+    assert goal["reason"] == "goal met" and goal["round"] == len(rounds)
+    (sl,) = goal["slices"].values()
+    assert sl["halfwidth"] <= 0.02 and sl["nu"] == rounds[-1]["nu"]["pb=0.0|po=0.0|eps=1e-06"]
+    proc = cli("status", whole, "--calibration", cal)
+    assert "stopped: goal met" in proc.stdout and "nu = " in proc.stdout, proc.stdout
     # the replicas went where they inform ν, not everywhere
     counts: dict[str, int] = {}
     for k, _, _ in want:
