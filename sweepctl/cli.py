@@ -584,6 +584,8 @@ def run(
         f"{res.done} of {res.points} points done ({res.capped} stopped at the cap), "
         f"{res.failed} failed; {res.computed} replicas computed in {_duration(res.seconds)}"
     )
+    if res.goal_reason is not None:
+        console.print(f"goal on nu: {res.goal_reason}")
     if res.interrupted:
         console.print(
             f"interrupted — run the same command again to continue: "
@@ -890,8 +892,27 @@ def status(
     )
     for line in _status_lines(totals):
         console.print(line, highlight=False, soft_wrap=True)
+    if "goal" in totals:
+        console.print(_goal_line(totals["goal"]), highlight=False, soft_wrap=True)
     if chain is not None:
         _print_chain(chain)
+
+
+def _goal_line(goal: dict) -> str:
+    """``status``: the goal on ν, each slice's ν ± half-width, and why the campaign stopped."""
+    head = f"goal: nu ± {goal['nu_halfwidth']:g} per slice within {goal['cpu_hours']:g} CPU-hours"
+    if goal.get("note"):
+        return f"{head} ({goal['note']})"
+    parts = [
+        f"{k}: nu = {v['nu']:.4g} ± {v['halfwidth']:.3g}"
+        if v["nu"] is not None
+        else f"{k}: no acceptable form yet"
+        for k, v in goal["slices"].items()
+    ]
+    spent = goal["cpu_hours_spent"]
+    tail = f"; {spent:.3g} CPU-hours spent" if spent is not None else ""
+    state = f"stopped: {goal['reason']}" if goal["reason"] else f"round {goal['round']}"
+    return f"{head}; {state}{tail}" + ("; " + "; ".join(parts) if parts else "")
 
 
 def _print_chain(chain: dict) -> None:

@@ -38,7 +38,7 @@ from sweepctl.campaign.plan import (
     freeze,
     slice_key,
 )
-from sweepctl.campaign.progress import PointProgress, RunPreview, preview_run
+from sweepctl.campaign.progress import GoalRounds, PointProgress, RunPreview, preview_run
 from sweepctl.campaign.recipe import Recipe
 from sweepctl.campaign.store import CONVENTIONS, Store, StoreError, code_version
 
@@ -64,6 +64,8 @@ class RunResult:
     computed: int
     interrupted: bool
     seconds: float
+    #: with a goal on ν: why the campaign stopped (``allocate``'s reason), or None
+    goal_reason: str | None = None
 
 
 def now_iso() -> str:
@@ -147,6 +149,9 @@ class Driver:
         self.options, self.cost = options, cost
         self.say = report or (lambda _m: None)
         self.progress: dict[str, PointProgress] = {}
+        #: campaign-wide rounds of a recipe with a goal, else None
+        self.goal_rounds: GoalRounds | None = None
+        self._replayed: list[dict] = []
         self.frozen: Frozen | None = None
         self._rehearsal = None
         self.meta: dict = {}
@@ -208,6 +213,7 @@ class Driver:
                     }
                 ]
             )
+            self._log_replayed_decisions()
             todo = [pp for pp in self.progress.values() if not pp.finished]
             self.say(
                 {
@@ -286,7 +292,58 @@ class Driver:
         }
         rows = self.store.read_replicas(columns=["point_key", "replica", "gamma_strips"])
         preview, self.progress = preview_run(self.recipe, prep.frozen, rows, prep.previous)
+        self.goal_rounds = None
+        self._replayed = []
+        if self.recipe.goal is not None:
+            # the rounds already decided, again from the stored prefixes
+            self.goal_rounds = GoalRounds(self.recipe, prep.frozen, self._price)
+            self._replayed = self.goal_rounds.advance(self.progress)
         return preview
+
+    def _price(self, pp: PointProgress) -> float:
+        """CPU seconds of one replica of ``pp`` by the cost model (goal rounds and their
+        budget: a price, not a measured time, so decisions do not depend on timing)."""
+        if self.cost is None:
+            raise StoreError(
+                "a goal on nu spends its CPU budget by the cost model's prices, which need a "
+                "kernel calibration: give --calibration FILE (from `sweepctl bench --out FILE`)"
+            )
+        return self.cost.replica_seconds(pp.point, pp.layers, pp.warmup, self.frozen.strips)
+
+    def _log_replayed_decisions(self) -> None:
+        """Log the replay's decisions that no earlier run logged (a run cut between its
+        decision and its next flush)."""
+        if not self._replayed:
+            return
+        logged = {
+            e.get("round") for e in self.store.read_events() if e.get("event") == "allocation"
+        }
+        new = [{"time": now_iso(), **d} for d in self._replayed if d["round"] not in logged]
+        if new:
+            self.store.append_events(new)
+
+    def _decide_goal_rounds(self) -> None:
+        """After a result: decide the campaign's next round once every prefix is complete."""
+        decided = self.goal_rounds.advance(self.progress)
+        for d in decided:
+            self._event(d)
+            hw = ", ".join(
+                f"{k}: nu = {d['nu'][k]:.4g} ± {v:.3g}"
+                for k, v in d["nu_halfwidth"].items()
+                if v is not None
+            )
+            what = d["reason"] or f"{sum(d['replicas'].values())} replicas wanted"
+            self.say({"kind": "log", "message": f"round {d['round']}: {what}; {hw or 'no fit'}"})
+        if not decided:
+            return
+        for pp in self.progress.values():
+            if not pp.finished:
+                self.submit(pp)
+        if (
+            decided[-1]["reason"] is None
+            and os.environ.get("SWEEPCTL_FAULT") == "signal-after-round"
+        ):
+            os.kill(os.getpid(), signal.SIGTERM)  # fault-injection hook: stop after a decision
 
     def _connect(self) -> None:
         from distributed import as_completed
@@ -384,10 +441,13 @@ class Driver:
         )
         per = out.wall_seconds / max(1, (spec.layers + spec.warmup) * spec.strips)
         self.observed.setdefault(slice_key(pp.point), []).append(per)
-        before = pp.wanted
-        pp.decide()
-        if pp.wanted > before:
-            self.submit(pp)
+        if self.goal_rounds is not None:
+            self._decide_goal_rounds()
+        else:
+            before = pp.wanted
+            pp.decide()
+            if pp.wanted > before:
+                self.submit(pp)
         if (
             len(self._rows) >= self.options.flush_rows
             or time.perf_counter() - self._last_flush >= self.options.flush_seconds
@@ -543,6 +603,7 @@ class Driver:
             computed=self.computed,
             interrupted=self.interrupted,
             seconds=time.perf_counter() - t0,
+            goal_reason=None if self.goal_rounds is None else self.goal_rounds.reason,
         )
 
 

@@ -2,11 +2,18 @@
 
 The same replay serves the driver (what to submit), ``status`` (what is left) and
 ``plan --store`` (what a run would do), so the three cannot disagree.
+
+With a ``[goal]`` the rounds are the campaign's, not each point's: a point never
+advances on its own (:meth:`PointProgress.decide` leaves it), and once every point's
+current prefix is complete :class:`GoalRounds` fits each disorder/ε slice and asks
+:func:`~sweepctl.campaign.allocate.allocate` for the next round. Round k depends only on
+the prefixes round k − 1 wanted, so replaying from stored rows repeats every decision.
 """
 
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -15,7 +22,14 @@ import pyarrow as pa
 from sweepctl.campaign.plan import Frozen, next_target, relative_error
 from sweepctl.campaign.recipe import Point, Recipe
 
-__all__ = ["PointProgress", "RunPreview", "build_progress", "preview_run"]
+__all__ = [
+    "GoalRounds",
+    "PointProgress",
+    "RunPreview",
+    "build_progress",
+    "fit_slice_key",
+    "preview_run",
+]
 
 
 @dataclass
@@ -32,13 +46,15 @@ class PointProgress:
     wanted: int = 0
     finished: bool = False
     failed: bool = False
+    #: rounds are decided for the whole campaign (:class:`GoalRounds`), not here
+    goal: bool = False
 
     def prefix_complete(self) -> bool:
         return all(r in self.done for r in range(self.wanted))
 
     def decide(self) -> None:
         """Advance the round structure as far as complete prefixes allow."""
-        while not self.finished and self.prefix_complete():
+        while not self.goal and not self.finished and self.prefix_complete():
             nt = next_target(
                 [self.done[r] for r in range(self.wanted)],
                 self.target,
@@ -94,6 +110,7 @@ def build_progress(
             min_estimates=frozen.min_strip_estimates,
             # the first round already holds the strips an error bar needs
             wanted=min(max(recipe.initial, min_reps), cap),
+            goal=recipe.goal is not None,
         )
     if rows is not None and rows.num_rows:
         keys = rows.column("point_key").to_pylist()
@@ -161,3 +178,106 @@ def preview_run(
         ),
         progress,
     )
+
+
+def fit_slice_key(point: Point) -> str:
+    """Key of the point's disorder/ε slice: the points one scaling fit (and one goal) covers."""
+    return f"pb={point.p_block!r}|po={point.p_open!r}|eps={point.epsilon!r}"
+
+
+class GoalRounds:
+    """Campaign-wide rounds of a recipe with a goal (module docstring).
+
+    ``price(pp)`` is the CPU seconds of one replica of ``pp``'s point (the cost model's,
+    never a measured time: decisions must not depend on timing); ``fitter(data,
+    symmetric)`` the slice fit (:func:`~sweepctl.campaign.allocate.fit_slice`).
+    """
+
+    def __init__(
+        self,
+        recipe: Recipe,
+        frozen: Frozen,
+        price: Callable[[PointProgress], float],
+        fitter: Callable | None = None,
+    ) -> None:
+        from sweepctl.campaign.allocate import fit_slice
+
+        if recipe.goal is None:
+            raise ValueError("goal rounds need a recipe with [goal]")
+        self.goal = recipe.goal
+        self.target = recipe.target
+        self.min_estimates = frozen.min_strip_estimates
+        self.price = price
+        self.fitter = fitter or fit_slice
+        #: rounds decided so far (round 0 is every point's first round)
+        self.round = 0
+        #: why the campaign stopped (``allocate``'s reason), or None
+        self.reason: str | None = None
+
+    def advance(self, progress: dict[str, PointProgress]) -> list[dict]:
+        """Decide every round whose prefixes are complete; the decisions as events."""
+        from sweepctl.campaign.allocate import PointState, SliceState, allocate, slice_data
+
+        out: list[dict] = []
+        while self.reason is None:
+            live = sorted(
+                (pp for pp in progress.values() if not pp.failed), key=lambda q: q.point.key
+            )
+            if not live or not all(pp.prefix_complete() for pp in live):
+                break
+            by_slice: dict[str, list[PointState]] = {}
+            for pp in live:
+                by_slice.setdefault(fit_slice_key(pp.point), []).append(
+                    PointState(
+                        point=pp.point,
+                        prefix=tuple(pp.done[r] for r in range(pp.wanted)),
+                        replica_seconds=float(self.price(pp)),
+                        max_replicas=pp.max_replicas,
+                    )
+                )
+            slices = []
+            for key, pts in sorted(by_slice.items()):
+                symmetric = pts[0].point.p_block == pts[0].point.p_open
+                fit = self.fitter(slice_data(pts), symmetric)
+                slices.append(SliceState(key, tuple(pts), fit, self.goal.nu_halfwidth))
+            spent = sum(p.replicas * p.replica_seconds for s in slices for p in s.points)
+            a = allocate(
+                slices,
+                target=self.target,
+                min_estimates=self.min_estimates,
+                budget_seconds=self.goal.cpu_hours * 3600.0 - spent,
+            )
+            self.round += 1
+            grown = {
+                pp.point.key: a.wanted[pp.point.key]
+                for pp in live
+                if a.wanted[pp.point.key] > pp.wanted
+            }
+            out.append(
+                {
+                    "event": "allocation",
+                    "round": self.round,
+                    "reason": a.reason,
+                    "cpu_seconds_spent": spent,
+                    "cpu_seconds_round": a.seconds,
+                    "forms": {
+                        s.key: None if s.fit is None else s.fit.model.describe() for s in slices
+                    },
+                    "nu": {s.key: None if s.fit is None else s.fit.values()["nu"] for s in slices},
+                    "nu_halfwidth": {k: _finite(v) for k, v in a.halfwidth.items()},
+                    "projected_halfwidth": {k: _finite(v) for k, v in a.projected.items()},
+                    "replicas": grown,
+                }
+            )
+            if a.reason is not None:
+                self.reason = a.reason
+                for pp in progress.values():
+                    pp.finished = True
+                break
+            for pp in live:
+                pp.wanted = a.wanted[pp.point.key]
+        return out
+
+
+def _finite(v: float) -> float | None:
+    return float(v) if math.isfinite(v) else None

@@ -13,7 +13,7 @@ A recipe is a TOML file::
     epsilon = [1e-6]                # at least 9.42e-7 (see smallest_safe_epsilon)
 
     [precision]
-    target = 0.01              # relative standard error of Γ per point
+    target = 0.01              # relative standard error of Γ per point (a floor with [goal])
     max_layers = 5_000_000     # per-point cap on measured layers (or max_cpu_hours)
 
     [replica]
@@ -27,6 +27,13 @@ A recipe is a TOML file::
     nu = 2.6                   # sweepctl.kernel.rehearsal for the exact form)
     Gamma_c = 0.8
     F = [0.4, 0.0, 0.01]       # coefficients of rho, rho^2, ... with rho = (x - x_c) N^(1/nu)
+
+    [goal]                     # optional: aim the campaign at nu instead of per-point errors
+    nu_halfwidth = 0.05        # 95 % half-width of nu wanted on every disorder/epsilon slice
+    cpu_hours = 2000           # the campaign's CPU budget: it stops here if the goal is not met
+
+With a goal, ``precision.target`` is a floor (no point ends with a worse relative error)
+instead of the stop rule.
 
 Everything is checked before anything runs or is written; every problem is reported as
 ``RecipeError`` with one line naming the field, the value and the way out.
@@ -48,6 +55,7 @@ from sweepctl.errors import SweepctlError
 from sweepctl.kernel.rehearsal import RehearsalModel
 
 __all__ = [
+    "Goal",
     "Point",
     "Recipe",
     "RecipeError",
@@ -65,6 +73,7 @@ _SECTIONS = {
     "precision": {"target", "max_layers", "max_cpu_hours"},
     "replica": {"layers", "duration_seconds", "warmup", "strips", "initial", "checkpoint_seconds"},
     "model": {"kind", "nu", "y", "Gamma_c", "x_c", "F", "correction", "noise"},
+    "goal": {"nu_halfwidth", "cpu_hours"},
 }
 _REQUIRED = {
     "campaign": {"name"},
@@ -72,6 +81,7 @@ _REQUIRED = {
     "precision": {"target"},
     "replica": set(),
     "model": set(),
+    "goal": set(),  # both keys are required once [goal] is there (see _goal)
 }
 #: how the fix for a missing required key reads
 _EXAMPLES = {
@@ -224,6 +234,19 @@ class Point:
 
 
 @dataclass(frozen=True)
+class Goal:
+    """What a fit-aware campaign aims at: ν's 95 % half-width per slice, within a budget."""
+
+    #: 95 % half-width of ν wanted on every disorder/ε slice
+    nu_halfwidth: float
+    #: CPU-hours the whole campaign may spend (stored replicas included)
+    cpu_hours: float
+
+    def to_dict(self) -> dict:
+        return {"nu_halfwidth": self.nu_halfwidth, "cpu_hours": self.cpu_hours}
+
+
+@dataclass(frozen=True)
 class Recipe:
     """A validated recipe."""
 
@@ -245,6 +268,8 @@ class Recipe:
     description: str = ""
     #: the rehearsal law, or None for the network kernel
     model: RehearsalModel | None = None
+    #: the goal on ν (``[goal]``), or None: then ``target`` is each point's stop rule
+    goal: Goal | None = None
 
     @property
     def model_record(self) -> dict:
@@ -271,8 +296,8 @@ class Recipe:
     def canonical(self) -> dict:
         """Canonical dict (sorted, normalised); its JSON is what :meth:`digest` hashes.
 
-        A network recipe has no ``model`` key, so its digest is what it was before
-        recipes could name a model."""
+        A network recipe has no ``model`` key and a recipe without a goal no ``goal`` key,
+        so their digests are what they were before recipes could name either."""
         d = {
             "name": self.name,
             "entropy": None if self.entropy is None else f"{self.entropy:#x}",
@@ -292,6 +317,8 @@ class Recipe:
         }
         if self.model is not None:
             d["model"] = self.model.to_dict()
+        if self.goal is not None:
+            d["goal"] = self.goal.to_dict()
         return d
 
     @classmethod
@@ -314,6 +341,7 @@ class Recipe:
             initial=d["initial"],
             checkpoint_seconds=d["checkpoint_seconds"],
             model=RehearsalModel.from_dict(d["model"]) if d.get("model") else None,
+            goal=Goal(**d["goal"]) if d.get("goal") else None,
         )
 
     def digest(self) -> str:
@@ -608,6 +636,57 @@ def _model(
     return law
 
 
+#: the largest ν half-width a goal may ask for (ν itself is fitted within [0.2, 50])
+_MAX_NU_HALFWIDTH = 5.0
+_GOAL_FIX = {
+    "nu_halfwidth": (
+        "the 95 % half-width of nu wanted per slice: a number with 0 < nu_halfwidth <= "
+        f"{_MAX_NU_HALFWIDTH:g}, e.g. nu_halfwidth = 0.05"
+    ),
+    "cpu_hours": (
+        "the campaign's CPU budget in hours: a number with cpu_hours > 0, e.g. cpu_hours = 2000"
+    ),
+}
+_GOAL_MISSING = {
+    "nu_halfwidth": "add nu_halfwidth = 0.05 (the 95 % half-width of nu wanted per slice) "
+    "under [goal]",
+    "cpu_hours": "add cpu_hours = 2000 under [goal]: the campaign stops there if the goal is "
+    "not met",
+}
+
+
+def _goal(src: str, g: dict, widths: list[int], couplings: tuple[float, ...]) -> Goal | None:
+    """The ``[goal]`` table: ``None`` without one; both keys are required with it."""
+    if not g:
+        return None
+    for k in ("nu_halfwidth", "cpu_hours"):
+        if k not in g:
+            raise RecipeError(f"goal.{k}", None, _GOAL_MISSING[k], src)
+    h = _num(src, "goal.nu_halfwidth", g["nu_halfwidth"], _GOAL_FIX["nu_halfwidth"])
+    if not 0.0 < h <= _MAX_NU_HALFWIDTH:
+        raise RecipeError("goal.nu_halfwidth", g["nu_halfwidth"], _GOAL_FIX["nu_halfwidth"], src)
+    hours = _num(src, "goal.cpu_hours", g["cpu_hours"], _GOAL_FIX["cpu_hours"])
+    if not hours > 0.0:
+        raise RecipeError("goal.cpu_hours", g["cpu_hours"], _GOAL_FIX["cpu_hours"], src)
+    # ν comes from a scaling fit of each slice: it needs sizes and couplings to scale
+    if len(widths) < 2:
+        raise RecipeError(
+            "axes.widths",
+            widths,
+            "a goal on nu needs a scaling fit over at least 2 widths; add a width or remove [goal]",
+            src,
+        )
+    if len(couplings) < 3:
+        raise RecipeError(
+            "axes.couplings",
+            list(couplings),
+            "a goal on nu needs a scaling fit over at least 3 couplings; add couplings or "
+            "remove [goal]",
+            src,
+        )
+    return Goal(nu_halfwidth=h, cpu_hours=hours)
+
+
 def parse_recipe(data: dict, source: str = "recipe") -> Recipe:
     """Validate a decoded TOML document completely and return the :class:`Recipe`."""
     if not isinstance(data, dict):  # pragma: no cover - tomllib always gives a dict
@@ -816,6 +895,7 @@ def parse_recipe(data: dict, source: str = "recipe") -> Recipe:
         )
 
     model = _model(src, m, widths, couplings)
+    goal = _goal(src, data.get("goal", {}), widths, couplings)
 
     recipe = Recipe(
         name=name.strip(),
@@ -835,6 +915,7 @@ def parse_recipe(data: dict, source: str = "recipe") -> Recipe:
         checkpoint_seconds=ck,
         description=description,
         model=model,
+        goal=goal,
     )
     n_points = len(widths) * len(couplings) * len(disorder) * len(eps)
     if n_points > _MAX_POINTS:

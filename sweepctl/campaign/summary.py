@@ -10,7 +10,7 @@ import pandas as pd
 
 from sweepctl.campaign.cost import CostModel
 from sweepctl.campaign.plan import Frozen
-from sweepctl.campaign.progress import build_progress
+from sweepctl.campaign.progress import GoalRounds, build_progress
 from sweepctl.campaign.recipe import Recipe
 from sweepctl.campaign.store import Store
 
@@ -179,6 +179,7 @@ def status_rows(store: Store, cost: CostModel | None) -> tuple[list[dict], dict]
     campaign, recipe, frozen = store_recipe(store)
     rows = store.read_replicas(columns=["point_key", "replica", "gamma_strips"])
     progress = build_progress(recipe, frozen, rows)
+    goal = _goal_state(recipe, frozen, progress, cost)
     driver = driver_state(store)
     live = driver["state"] == "running"
     out = []
@@ -236,7 +237,42 @@ def status_rows(store: Store, cost: CostModel | None) -> tuple[list[dict], dict]
         "last_event": store.last_event(),
         **observed_eta(store, progress, frozen, cost),
     }
+    if goal is not None:
+        totals["goal"] = goal
     return out, totals
+
+
+def _goal_state(recipe, frozen, progress, cost: CostModel | None) -> dict | None:
+    """With a goal: the campaign's rounds replayed (as the driver decides them) and the
+    last decision's ν ± linearised half-width per slice; None without a goal."""
+    if recipe.goal is None:
+        return None
+    out = {
+        "nu_halfwidth": recipe.goal.nu_halfwidth,
+        "cpu_hours": recipe.goal.cpu_hours,
+        "round": None,
+        "reason": None,
+        "cpu_hours_spent": None,
+        "slices": {},
+    }
+    if cost is None:
+        out["note"] = "the rounds are replayed with the cost model: give --calibration FILE"
+        return out
+    rounds = GoalRounds(
+        recipe,
+        frozen,
+        lambda pp: cost.replica_seconds(pp.point, pp.layers, pp.warmup, frozen.strips),
+    )
+    decided = rounds.advance(progress)
+    out["round"], out["reason"] = rounds.round, rounds.reason
+    if decided:
+        last = decided[-1]
+        out["cpu_hours_spent"] = last["cpu_seconds_spent"] / 3600.0
+        out["slices"] = {
+            k: {"form": last["forms"][k], "nu": last["nu"][k], "halfwidth": last["nu_halfwidth"][k]}
+            for k in last["nu"]
+        }
+    return out
 
 
 def compact_store(store: Store, wait: float = 0.0) -> dict:

@@ -72,6 +72,14 @@ checkpoint_seconds = 180         # default 180; seconds between checkpoints of a
 # 0), correction (default 0), y (-5 <= y < 0, needed with a correction), noise
 # (default 1). Example: recipes/rehearsal.toml.
 kind = "network"
+
+# [goal]
+# Optional: aim the campaign at nu. Rounds are then the campaign's: each disorder/epsilon
+# slice is fitted after every round and the next replicas go where they shrink nu's
+# interval most per CPU-second; precision.target becomes a floor. Both keys together;
+# needs >= 2 widths, >= 3 couplings and a calibration (--calibration). May change later.
+# nu_halfwidth = 0.05            # 95 % half-width of nu per slice, 0 < nu_halfwidth <= 5
+# cpu_hours = 2000               # the campaign's CPU budget, > 0: it stops there
 """
 
 

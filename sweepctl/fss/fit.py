@@ -302,15 +302,16 @@ class Fit:
         return float(self.theta_err[names.index(name)]) if name in names else math.nan
 
 
-def weighted_basis(
-    model: ScalingModel, theta: np.ndarray, f: np.ndarray, data: ScalingData
+def jacobian(
+    model: ScalingModel, theta: np.ndarray, f: np.ndarray, x: np.ndarray, n: np.ndarray
 ) -> np.ndarray:
-    """Orthonormal basis (P × k) of the Jacobian of F/σ̂ in all k parameters (θ and f).
+    """Jacobian (P × k) of F at the points (x, N) in all k parameters: θ, then f.
 
     The θ columns are central differences (step 1e-6·(1 + |θ_j|)); the f columns are the
     design matrix, F being linear in f.  A column that cannot be evaluated is left zero.
     """
     theta = np.asarray(theta, float)
+    x, n = np.asarray(x, float), np.asarray(n, float)
     cols = []
     for j in range(theta.size):
         h = 1e-6 * (1.0 + abs(theta[j]))
@@ -318,11 +319,17 @@ def weighted_basis(
         up[j] += h
         dn[j] -= h
         with np.errstate(all="ignore"):
-            col = (
-                model.evaluate(up, f, data.x, data.N) - model.evaluate(dn, f, data.x, data.N)
-            ) / (2 * h)
+            col = (model.evaluate(up, f, x, n) - model.evaluate(dn, f, x, n)) / (2 * h)
         cols.append(np.where(np.isfinite(col), col, 0.0))
-    jac = np.column_stack([*cols, model.design(theta, data.x, data.N)]) / data.Gamma_err[:, None]
+    return np.column_stack([*cols, model.design(theta, x, n)])
+
+
+def weighted_basis(
+    model: ScalingModel, theta: np.ndarray, f: np.ndarray, data: ScalingData
+) -> np.ndarray:
+    """Orthonormal basis (P × k) of the Jacobian of F/σ̂ in all k parameters (θ and f),
+    :func:`jacobian` divided row by row by σ̂."""
+    jac = jacobian(model, theta, f, data.x, data.N) / data.Gamma_err[:, None]
     q, _ = np.linalg.qr(jac)
     return q
 

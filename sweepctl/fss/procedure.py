@@ -192,6 +192,13 @@ def _fit_rows(data, models, widths, progress, stage, per_bin=1) -> list[ScanRow]
     return rows
 
 
+def stable_forms(data: ScalingData, symmetric: bool, max_orders: Orders) -> list[ScanRow]:
+    """Step 1 alone: every form up to ``max_orders`` at every N_min, and the stable
+    windows among them, the choice first (what the allocator fits each round)."""
+    models = candidate_models(max_orders, symmetric, with_log=False)
+    return stable_windows(_fit_rows(data, models, data.widths(), None, "scanning"))
+
+
 def run(
     data: ScalingData,
     *,
@@ -314,4 +321,5 @@ __all__ = [
     "Branch",
     "Outcome",
     "run",
+    "stable_forms",
 ]

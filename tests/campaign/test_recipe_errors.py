@@ -71,6 +71,17 @@ BAD = [
     ("warmup-negative", {"replica": {"warmup": -5}}, "replica.warmup"),
     ("name-missing", {"campaign": {"name": None}}, "campaign.name"),
     ("entropy-not-integer", {"campaign": {"entropy": '"xyz"'}}, "campaign.entropy"),
+    # a goal on nu: both keys, each in its range, and slices that a scaling fit can use
+    ("goal-halfwidth-missing", {"goal": {"cpu_hours": 10}}, "goal.nu_halfwidth"),
+    ("goal-budget-missing", {"goal": {"nu_halfwidth": 0.05}}, "goal.cpu_hours"),
+    ("goal-halfwidth-zero", {"goal": {"nu_halfwidth": 0.0, "cpu_hours": 10}}, "goal.nu_halfwidth"),
+    ("goal-budget-negative", {"goal": {"nu_halfwidth": 0.05, "cpu_hours": -1}}, "goal.cpu_hours"),
+    ("goal-unknown-key", {"goal": {"nu_width": 0.05}}, "goal.nu_width"),
+    (
+        "goal-one-width",
+        {"axes": {"widths": [2]}, "goal": {"nu_halfwidth": 0.05, "cpu_hours": 10}},
+        "axes.widths",
+    ),
     # syntax errors lead with line and column; a file problem names the file once
     ("unreadable-toml", "raw:[axes\nwidths = [4", "line 1, column 6: TOML syntax"),
     ("not-utf8", "bytes", "not UTF-8"),
@@ -155,6 +166,22 @@ def test_messages_keep_their_table_names(tmp_path):
             "greater than start = 0.2; swap them",
         ),
         ({"axes": {"couplings": [11.0]}}, "axes.couplings[0] = 11.0", "-10 <= x <= 10"),
+        # the goal's fixes name the allowed range and an example
+        (
+            {"goal": {"nu_halfwidth": 7, "cpu_hours": 10}},
+            "goal.nu_halfwidth = 7",
+            "0 < nu_halfwidth <= 5, e.g. nu_halfwidth = 0.05",
+        ),
+        (
+            {"goal": {"nu_halfwidth": 0.05, "cpu_hours": "lots"}},
+            'goal.cpu_hours = "lots"',
+            "cpu_hours > 0, e.g. cpu_hours = 2000",
+        ),
+        (
+            {"goal": {"nu_halfwidth": 0.05}},
+            "goal.cpu_hours is missing",
+            "add cpu_hours = 2000 under [goal]",
+        ),
     ],
 )
 def test_messages_read_as_toml(overrides, shown, fix, tmp_path):

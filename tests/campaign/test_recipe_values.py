@@ -7,7 +7,7 @@ import tomllib
 import pytest
 
 from sweepctl.campaign.plan import replica_seed
-from sweepctl.campaign.recipe import parse_recipe
+from sweepctl.campaign.recipe import Goal, Recipe, parse_recipe
 from tests.campaign.helpers import recipe_text
 
 
@@ -40,3 +40,15 @@ def test_zero_from_a_range_is_the_critical_point_itself():
     ranged = _recipe({"start": -0.2, "stop": 0.1, "num": 4})
     zero = [p for p in ranged.points() if abs(p.x) < 1e-9]
     assert zero and all(p.x == 0.0 and "x=0.0" in p.key for p in zero)
+
+
+def test_a_goal_is_read_and_kept_in_the_canonical_form():
+    text = recipe_text({"goal": {"nu_halfwidth": 0.05, "cpu_hours": 2000}})
+    r = parse_recipe(tomllib.loads(text))
+    assert r.goal == Goal(nu_halfwidth=0.05, cpu_hours=2000.0)
+    # the recipe recorded in a store gives the goal back
+    assert Recipe.from_canonical(r.canonical()).goal == r.goal
+    # without [goal] the canonical form has no goal key (old stores' digests stay valid)
+    plain = parse_recipe(tomllib.loads(recipe_text()))
+    assert plain.goal is None and "goal" not in plain.canonical()
+    assert plain.digest() != r.digest()

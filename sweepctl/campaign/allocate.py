@@ -1,0 +1,398 @@
+"""Fit-aware allocation: the next replicas go where they shrink ν's interval most per CPU-second.
+
+Pure and I/O-free: the input is, per point, the complete stored prefix of replicas
+``0..R-1`` (their strip values of Γ), the CPU seconds one more replica costs there (from
+:class:`~sweepctl.campaign.cost.CostModel`) and the point's replica cap; per slice, a fit
+of one scaling form (:class:`~sweepctl.fss.fit.Fit`).  The output is the replica count
+each point should reach and, when nothing more is worth scheduling, why.  Nothing depends
+on timing or on the order in which workers finished: a resumed or differently scheduled
+campaign that stores the same prefixes gets the same decisions.
+
+Criterion (linearised; [M5] tests/REFERENCES.md for the form)
+--------------------------------------------------------------
+Point i of a slice has n_i replicas of s_i strips; its strip values have sample
+variance v_i, so its mean Γ̄_i has variance σ_i² = v_i/(n_i s_i) ∝ 1/n_i.  Linearise the
+scaling form F(x, N; β) about the fit, β = (θ, f) all k parameters, with J_i = ∂F_i/∂β
+(:func:`sweepctl.fss.fit.jacobian`).  Weighted least squares with W = diag(1/σ_i²) then
+has covariance (JᵀWJ)⁻¹ (Gauss–Markov), and
+
+    Var(ν) = e_νᵀ I⁻¹ e_ν,    I = JᵀWJ = Σ_i (n_i s_i / v_i) J_iᵀ J_i.
+
+The f are included in β, so the variance of ν already accounts for the profiled linear
+coefficients (the Schur complement of their block, which is what the variable-projection
+fit's own linearised error is at zero residual).  One more replica at i adds
+c_i J_iᵀ J_i with c_i = s_i/v_i, a rank-one change; by Sherman–Morrison
+
+    Var'(ν) = Var(ν) − c_i g_i² / (1 + c_i h_i),   g_i = J_i I⁻¹ e_ν,  h_i = J_i I⁻¹ J_iᵀ,
+
+exact for the linearised model, with diminishing returns built in (h_i is the point's
+leverage).  The gain per CPU-second is that reduction over the replica's cost; across
+slices it is measured in units of the slice's goal variance, (h/z₉₅)², so that a slice
+far from its goal is not starved by one that is nearly there.  Replicas are added one
+at a time, greedily (the largest gain per second next, I⁻¹ updated by Sherman–Morrison),
+until every slice's projected half-width z₉₅·√Var(ν) is below its goal by the margin
+:data:`MARGIN`, the round's CPU reaches ``growth − 1`` times what the prefixes cost (a
+round trusts a linearisation made on the data so far only that far), or the budget is
+spent.  v_i is the sample variance of the point's own strips (≥ 51 of them before any
+point may stop, [S1]): the law Var = k·N·Γ/L of [R1] holds on the clean network, the
+sample variance also with disorder.
+
+A slice without a fit (too few data for any acceptable form) grows uniformly, each
+point by ``growth − 1`` times its replicas: a longer pilot.
+
+The floor
+---------
+A point whose relative error misses ``precision.target`` (or that has fewer than the
+minimum strip values) first gets what :func:`~sweepctl.campaign.plan.next_target` asks
+for, as without a goal; those replicas count towards ν's information like any other.
+
+Stop reasons
+------------
+When a round adds nothing: ``"goal met"`` (every slice's linearised half-width is within
+its goal and every point meets the floor), ``"budget spent"`` (no affordable replica
+remains), ``"no point can improve it"`` (every point that informs ν is at its cap, or no
+replica changes Var(ν) measurably).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from sweepctl.campaign.plan import next_target
+from sweepctl.campaign.recipe import Point
+from sweepctl.fss.fit import Fit, ScalingData, jacobian
+from sweepctl.fss.procedure import DEFAULT_MAX_ORDERS, stable_forms
+from sweepctl.fss.scan import Z95
+
+__all__ = [
+    "BUDGET_SPENT",
+    "GOAL_MET",
+    "NO_IMPROVEMENT",
+    "Allocation",
+    "PointState",
+    "SliceDesign",
+    "SliceState",
+    "allocate",
+    "fit_slice",
+    "slice_data",
+]
+
+GOAL_MET = "goal met"
+BUDGET_SPENT = "budget spent"
+NO_IMPROVEMENT = "no point can improve it"
+
+#: a round aims at Var(ν) ≤ (goal/z₉₅)²/MARGIN: the same 20 % head-room the per-point
+#: rule (:func:`~sweepctl.campaign.plan.next_target`) gives its replica counts
+MARGIN = 1.2
+#: a round spends at most (GROWTH − 1) × the prefixes' CPU: a linearisation on the data
+#: so far is trusted for a doubling, then the slice is fitted again
+GROWTH = 2.0
+#: a replica that lowers Var(ν) by less than this fraction changes nothing measurable
+#: (rounding in the rank-one update is ~1e-13 for a well-conditioned I)
+MIN_RELATIVE_GAIN = 1e-9
+
+
+@dataclass(frozen=True)
+class PointState:
+    """One point as a decision sees it.
+
+    Parameters
+    ----------
+    point
+        The point (its key orders ties).
+    prefix
+        Strip values of Γ of replicas ``0..R-1``, all complete (one array per replica).
+    replica_seconds
+        CPU seconds of one more replica here (``CostModel.replica_seconds``).
+    max_replicas
+        The point's replica cap.
+    """
+
+    point: Point
+    prefix: tuple[np.ndarray, ...]
+    replica_seconds: float
+    max_replicas: int
+
+    @property
+    def replicas(self) -> int:
+        return len(self.prefix)
+
+    def strips(self) -> np.ndarray:
+        return np.concatenate(self.prefix) if self.prefix else np.zeros(0)
+
+
+@dataclass(frozen=True)
+class SliceState:
+    """A disorder/ε slice: its points and a fit of one scaling form to their prefixes.
+
+    ``fit`` is None while the slice cannot be fitted (then only the floor applies).
+    ``nu_halfwidth`` is the goal's 95 % half-width of ν.
+    """
+
+    key: str
+    points: tuple[PointState, ...]
+    fit: Fit | None
+    nu_halfwidth: float
+
+
+#: largest orders the allocator's form choice scans (those of ``sweepctl fit``)
+MAX_ORDERS = DEFAULT_MAX_ORDERS
+
+
+def fit_slice(data: ScalingData, symmetric: bool) -> Fit | None:
+    """The slice's fit the allocator linearises: the procedure's stable choice
+    (:func:`sweepctl.fss.procedure.stable_forms`: every form up to :data:`MAX_ORDERS` at
+    every N_min, as ``sweepctl fit`` scans), or None when no form is stable yet.
+
+    Deterministic (fixed design seeds), so a replay of the rounds fits the same form.
+    """
+    if len(data.widths()) < 2:
+        return None
+    stable = stable_forms(data, symmetric, MAX_ORDERS)
+    return stable[0].fit if stable else None
+
+
+def slice_data(points: tuple[PointState, ...] | list[PointState]) -> ScalingData:
+    """Γ̄, its standard error and the strip count per point (what the slice's fit uses).
+
+    Points with fewer than two strip values are left out (no error bar yet).
+    """
+    rows = [(p, p.strips()) for p in points]
+    rows = [(p, g) for p, g in rows if g.size >= 2]
+    return ScalingData(
+        N=np.array([p.point.width for p, _ in rows], float),
+        x=np.array([p.point.x for p, _ in rows], float),
+        Gamma=np.array([float(np.mean(g)) for _, g in rows]),
+        Gamma_err=np.array([float(np.std(g, ddof=1) / math.sqrt(g.size)) for _, g in rows]),
+        n_strips=np.array([g.size for _, g in rows], float),
+    )
+
+
+class SliceDesign:
+    """The linearised information on ν of one slice (module docstring).
+
+    Rows are the points of the fit's window (N ≥ ``fit.n_min``) with at least two strip
+    values; ``index`` maps them back to positions in ``slice_.points``.
+    """
+
+    def __init__(self, slice_: SliceState) -> None:
+        fit = slice_.fit
+        if fit is None:
+            raise ValueError("a slice without a fit has no design")
+        self.slice = slice_
+        keep = []
+        for i, p in enumerate(slice_.points):
+            g = p.strips()
+            if p.point.width >= fit.n_min and g.size >= 2:
+                keep.append((i, p, g))
+        self.index = np.array([i for i, _, _ in keep], dtype=int)
+        x = np.array([p.point.x for _, p, _ in keep], float)
+        n = np.array([p.point.width for _, p, _ in keep], float)
+        self.J = jacobian(fit.model, fit.theta, fit.f, x, n)
+        var = np.array([float(np.var(g, ddof=1)) for _, _, g in keep])
+        tiny = np.finfo(float).tiny
+        #: information per strip value, 1/v_i, and strips per replica s_i
+        self.per_strip = 1.0 / np.maximum(var, tiny)
+        self.per_replica = np.array([g.size / p.replicas for _, p, g in keep], float)
+        self.strips = np.array([g.size for _, _, g in keep], float)
+        self.nu = fit.model.nonlinear_names().index("nu")
+        info = (self.J * (self.strips * self.per_strip)[:, None]).T @ self.J
+        self.cov = np.linalg.pinv(info, hermitian=True)
+
+    def var_nu(self) -> float:
+        """Var(ν) = [(JᵀWJ)⁻¹]_νν of the current design."""
+        return float(self.cov[self.nu, self.nu])
+
+    def halfwidth(self) -> float:
+        """Linearised 95 % half-width z₉₅·√Var(ν)."""
+        return Z95 * math.sqrt(max(self.var_nu(), 0.0))
+
+    def gains(self) -> np.ndarray:
+        """Reduction of Var(ν) by one more replica at each row (Sherman–Morrison)."""
+        c = self.per_replica * self.per_strip
+        a = self.J @ self.cov  # rows J_i I⁻¹
+        g = a[:, self.nu]
+        h = np.einsum("ij,ij->i", a, self.J)
+        return c * g * g / (1.0 + c * h)
+
+    def add(self, row: int, replicas: int = 1) -> None:
+        """Update I⁻¹ for ``replicas`` more replicas at ``row`` (rank one)."""
+        c = replicas * self.per_replica[row] * self.per_strip[row]
+        u = self.cov @ self.J[row]
+        self.cov -= np.outer(u, u) * (c / (1.0 + c * float(self.J[row] @ u)))
+        self.strips[row] += replicas * self.per_replica[row]
+
+
+@dataclass
+class Allocation:
+    """The next round: replica count each point should reach, and the state of each slice.
+
+    ``wanted`` maps point keys to a count ≥ the prefix's; ``reason`` is None while the
+    round schedules something, else one of :data:`GOAL_MET`, :data:`BUDGET_SPENT`,
+    :data:`NO_IMPROVEMENT`.  ``halfwidth`` / ``projected`` are each slice's linearised
+    95 % half-width of ν now and after the round (NaN for a slice without a fit).
+    """
+
+    wanted: dict[str, int]
+    reason: str | None
+    seconds: float
+    halfwidth: dict[str, float] = field(default_factory=dict)
+    projected: dict[str, float] = field(default_factory=dict)
+
+    def new_replicas(self, slices: list[SliceState]) -> int:
+        have = {p.point.key: p.replicas for s in slices for p in s.points}
+        return sum(w - have[k] for k, w in self.wanted.items())
+
+
+def allocate(
+    slices: list[SliceState],
+    *,
+    target: float,
+    min_estimates: int,
+    budget_seconds: float,
+    growth: float = GROWTH,
+    margin: float = MARGIN,
+) -> Allocation:
+    """Decide the next round of a campaign with a goal on ν (module docstring).
+
+    Parameters
+    ----------
+    slices
+        Every slice with its points' complete prefixes and a fit (or None).
+    target
+        ``precision.target``: the floor on each point's relative error.
+    min_estimates
+        Strip values a point needs before it may stop (the frozen minimum).
+    budget_seconds
+        CPU seconds the campaign may still spend (budget minus what is stored).
+    growth, margin
+        Round size limit and head-room (:data:`GROWTH`, :data:`MARGIN`).
+
+    Returns
+    -------
+    Allocation
+        A pure function of the arguments: slices and points are visited in key order,
+        and ties go to the first point in that order.
+    """
+    slices = sorted(slices, key=lambda s: s.key)
+    points = [p for s in slices for p in sorted(s.points, key=lambda q: q.point.key)]
+    wanted = {p.point.key: p.replicas for p in points}
+    left = float(budget_seconds)
+    spent = 0.0
+    short_of_budget = False
+
+    # the floor first: what the per-point rule asks of points that miss the target (a
+    # capped point has nothing more to give)
+    floor_met = True
+    for p in points:
+        want = next_target(list(p.prefix), target, p.max_replicas, min_estimates)
+        if want <= p.replicas:
+            continue
+        floor_met = False
+        afford = int(left // p.replica_seconds) if p.replica_seconds > 0 else want
+        add = min(want - p.replicas, afford)
+        short_of_budget = short_of_budget or add < want - p.replicas
+        wanted[p.point.key] += add
+        left -= add * p.replica_seconds
+        spent += add * p.replica_seconds
+
+    # a slice that cannot be fitted yet grows uniformly (a longer pilot), within the round
+    # size and the budget
+    for s in slices:
+        if s.fit is not None:
+            continue
+        for p in sorted(s.points, key=lambda q: q.point.key):
+            add = min(
+                math.ceil((growth - 1.0) * p.replicas),
+                p.max_replicas - wanted[p.point.key],
+            )
+            afford = int(left // p.replica_seconds) if p.replica_seconds > 0 else add
+            short_of_budget = short_of_budget or afford < add
+            add = max(0, min(add, afford))
+            wanted[p.point.key] += add
+            left -= add * p.replica_seconds
+            spent += add * p.replica_seconds
+
+    # then ν: the design of every fitted slice, the floor's replicas included
+    designs: dict[str, SliceDesign] = {}
+    halfwidth: dict[str, float] = {}
+    for s in slices:
+        if s.fit is None:
+            halfwidth[s.key] = math.nan
+            continue
+        d = SliceDesign(s)
+        halfwidth[s.key] = d.halfwidth()
+        for row, i in enumerate(d.index):
+            extra = wanted[s.points[i].point.key] - s.points[i].replicas
+            if extra:
+                d.add(row, extra)
+        designs[s.key] = d
+    goals_met = all(s.fit is not None and halfwidth[s.key] <= s.nu_halfwidth for s in slices)
+
+    round_limit = max((growth - 1.0) * sum(p.replicas * p.replica_seconds for p in points), spent)
+    # slices still short of their goal, each with its rows' keys, costs, counts and caps
+    open_: list[tuple[str, SliceDesign, float, list[str], np.ndarray, np.ndarray, np.ndarray]]
+    open_ = []
+    for s in slices:
+        if s.key not in designs or halfwidth[s.key] <= s.nu_halfwidth:
+            continue
+        d = designs[s.key]
+        rows = [s.points[i] for i in d.index]
+        open_.append(
+            (
+                s.key,
+                d,
+                (s.nu_halfwidth / Z95) ** 2 / margin,
+                [p.point.key for p in rows],
+                np.array([p.replica_seconds for p in rows], float),
+                np.array([wanted[p.point.key] for p in rows], dtype=np.int64),
+                np.array([p.max_replicas for p in rows], dtype=np.int64),
+            )
+        )
+    while True:
+        best = None  # (score, position in open_, row)
+        for j, (_, d, aim, _, cost, count, cap) in enumerate(open_):
+            var = d.var_nu()
+            if var <= aim:
+                continue
+            gains = d.gains()
+            useful = (count < cap) & (gains > MIN_RELATIVE_GAIN * var)
+            if not useful.any():
+                continue
+            ok = useful & (cost <= left)
+            short_of_budget = short_of_budget or bool((useful & ~ok).any())
+            if not ok.any():
+                continue
+            score = np.where(ok, gains / (aim * cost), -np.inf)
+            row = int(np.argmax(score))  # the first of equals: key order
+            if best is None or score[row] > best[0]:
+                best = (float(score[row]), j, row)
+        if best is None:
+            break
+        _, j, row = best
+        _, d, _, keys, cost, count, _ = open_[j]
+        if spent > 0.0 and spent + cost[row] > round_limit:
+            break
+        d.add(row)
+        count[row] += 1
+        wanted[keys[row]] += 1
+        left -= float(cost[row])
+        spent += float(cost[row])
+
+    projected = {
+        s.key: designs[s.key].halfwidth() if s.key in designs else math.nan for s in slices
+    }
+    reason = None
+    if spent == 0.0:
+        if goals_met and floor_met:
+            reason = GOAL_MET
+        elif short_of_budget:
+            reason = BUDGET_SPENT
+        else:
+            reason = NO_IMPROVEMENT
+    return Allocation(
+        wanted=wanted, reason=reason, seconds=spent, halfwidth=halfwidth, projected=projected
+    )

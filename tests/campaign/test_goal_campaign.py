@@ -1,0 +1,68 @@
+"""A rehearsal campaign with a goal on ν through the real driver, store and Dask workers."""
+
+from __future__ import annotations
+
+import json
+
+from tests.campaign.helpers import cli, events, write_recipe
+from tests.campaign.test_rehearsal import _calibration, _rows
+
+GOAL = {
+    "axes": {"widths": [4, 8, 16], "couplings": [-0.3, -0.2, -0.1, 0.0, 0.1, 0.2, 0.3]},
+    # a loose floor (the 51 strip values of 4 replicas decide it): the goal rules
+    "precision": {"target": 0.2, "max_layers": 800_000},
+    "replica": {"layers": 2000, "warmup": 32, "strips": 13, "initial": 4},
+    # self-dual (p = 0), so the slice is fitted with the symmetric forms
+    "model": {"kind": "rehearsal", "nu": 2.6, "Gamma_c": 0.8, "F": [0.0, 0.85, 0.0, 0.02]}
+    | {"noise": 0.5},
+    # three rounds after the first on this law and entropy (about 480 replicas)
+    "goal": {"nu_halfwidth": 0.02, "cpu_hours": 1.0},
+}
+
+
+def _rounds(store):
+    return [e for e in events(store) if e["event"] == "allocation"]
+
+
+def test_a_goal_campaign_stores_the_same_replicas_when_cut_and_resumed(tmp_path):
+    recipe = write_recipe(tmp_path / "recipe.toml", GOAL)
+    cal = _calibration(tmp_path / "cal.json")
+    whole = tmp_path / "whole"
+    proc = cli("run", recipe, "--store", whole, "--workers", "1", "--calibration", cal)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    assert "goal on nu: goal met" in proc.stdout, proc.stdout
+    want = [(r["point_key"], r["replica"], r["gamma_strips"]) for r in _rows(whole)]
+    rounds = _rounds(whole)
+    assert [d["round"] for d in rounds] == list(range(1, len(rounds) + 1)) and len(rounds) >= 2
+    assert [d["reason"] for d in rounds] == [None] * (len(rounds) - 1) + ["goal met"]
+    # status replays the rounds: the goal, each slice's ν ± half-width, the stop reason
+    proc = cli("status", whole, "--json", "--calibration", cal)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    goal = json.loads(proc.stdout)["totals"]["goal"]
+    assert goal["reason"] == "goal met" and goal["round"] == len(rounds)
+    (sl,) = goal["slices"].values()
+    assert sl["halfwidth"] <= 0.02 and sl["nu"] == rounds[-1]["nu"]["pb=0.0|po=0.0|eps=1e-06"]
+    proc = cli("status", whole, "--calibration", cal)
+    assert "stopped: goal met" in proc.stdout and "nu = " in proc.stdout, proc.stdout
+    # the replicas went where they inform ν, not everywhere
+    counts: dict[str, int] = {}
+    for k, _, _ in want:
+        counts[k] = counts.get(k, 0) + 1
+    assert min(counts.values()) == 4 < max(counts.values())
+
+    # two workers, and the driver stops itself right after deciding round 1
+    cut = tmp_path / "cut"
+    fault = {"SWEEPCTL_FAULT": "signal-after-round"}
+    proc = cli("run", recipe, "--store", cut, "--workers", "2", "--calibration", cal, env=fault)
+    assert proc.returncode == 130, proc.stdout + proc.stderr
+    assert events(cut)[-1]["event"] == "interrupted"
+    assert 0 < len(_rows(cut)) < len(want)
+    assert [d["round"] for d in _rounds(cut)] == [1]
+    proc = cli("run", recipe, "--store", cut, "--workers", "2", "--calibration", cal)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    assert [(r["point_key"], r["replica"], r["gamma_strips"]) for r in _rows(cut)] == want
+    # every decision logged once, and the same as the uninterrupted run's
+    keep = ("round", "reason", "forms", "replicas", "nu", "nu_halfwidth")
+    assert [{k: d[k] for k in keep} for d in _rounds(cut)] == [
+        {k: d[k] for k in keep} for d in rounds
+    ]
