@@ -7,6 +7,7 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pyarrow.parquet as pq
 import pytest
@@ -186,7 +187,7 @@ def test_worker_job_cancelled_mid_campaign(medium_reference, tmp_path):
     assert set(victims) & ids and len(ids) >= 2, (victims, ids)
 
 
-@pytest.mark.slow  # ~6 minutes: several one-minute jobs' TIMEOUTs, then the replica's end
+@pytest.mark.slow  # ~7 minutes: several one-minute jobs' TIMEOUTs, then the replica's end
 def test_worker_job_hits_walltime_mid_replica(tmp_path):
     # derived: this replica runs at 7.2e-7 s of CPU per strip-layer here (6.9e-7 at
     # best), and a one-minute job's TIMEOUT comes 66-88 s after it starts (the
@@ -202,13 +203,23 @@ def test_worker_job_hits_walltime_mid_replica(tmp_path):
     store = tmp_path / "store"
     # one-minute jobs and no early retirement: Slurm's TIMEOUT ends the worker mid-replica
     prof = profile(tmp_path, walltime='"00:01:00"', lifetime_margin='"off"')
-    proc = cli(
-        "run", recipe, "--store", store, "--cluster", "test", "--profiles", prof, timeout=2400
-    )
-    assert proc.returncode == 0, proc.stdout + proc.stderr
+    # the same replica uninterrupted, computed meanwhile on the core the one-replica
+    # worker job leaves idle (afterwards it would add the whole replica's time again)
+    ref = start_cli("run", recipe, "--store", tmp_path / "ref", "--workers", "1")
+    try:
+        proc = cli(
+            "run", recipe, "--store", store, "--cluster", "test", "--profiles", prof, timeout=2400
+        )
+        assert proc.returncode == 0, proc.stdout + proc.stderr
+        assert ref.wait(timeout=2400) == 0
+    finally:
+        if ref.poll() is None:
+            ref.kill()
     row = pq.read_table(store / "replicas").to_pylist()[0]
-    assert row["resumed_at_layer"] > 0
-    assert_row_recomputes(row)  # bit-identical to an uninterrupted replica
+    fresh = pq.read_table(tmp_path / "ref" / "replicas").to_pylist()[0]
+    assert row["resumed_at_layer"] > 0 and fresh["resumed_at_layer"] == 0
+    for col in ("gamma_strips", "exponents"):  # bit-identical to the uninterrupted replica
+        assert np.asarray(row[col]).tobytes() == np.asarray(fresh[col]).tobytes(), col
     # how the worker jobs ended, asked of Slurm (sacct, the controller, or the
     # job-completion log where `scontrol show config` puts it)
     ids = {p.stem.rsplit("-", 1)[-1] for p in (store / "batch-logs").glob("*-*.err")}
