@@ -2,10 +2,12 @@
 
 from __future__ import annotations
 
+import itertools
 import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 import pyarrow.parquet as pq
 import pytest
@@ -32,20 +34,30 @@ SLOW = {
 }
 
 
-# about a minute of work on two workers: long enough to cancel a job in the middle
+# A fixed amount of work, whatever the machine's speed: each of the 9 points stops at
+# its first round of `initial` = 4 replicas (the cap max_layers = 4 x layers ends it
+# there). derived: 9 x 4 replicas x 240 032 layers x 26 strips at the idle
+# strip-layer rates of `sweepctl bench` here (1.9e-7, 2.6e-7, 4.0e-7 s for N = 2, 3, 4)
+# = 64 s of CPU, ~32 s on two workers; replicas of 1.2-2.5 s (0.4-0.8 s on a machine
+# three times faster), so a 0.2 s checkpoint shows a replica mid-way
 MEDIUM = {
     "axes": {"widths": [2, 3, 4]},
-    "precision": {"target": 0.001, "max_layers": 3_080_000},
-    "replica": {"layers": 46_000, "checkpoint_seconds": 1},
+    "precision": {"target": 0.01, "max_layers": 4 * 240_000},
+    "replica": {"layers": 240_000, "initial": 4, "checkpoint_seconds": 0.2},
 }
 
 
-# several one-minute links of about 8 s work each: 6 to 20 s of work on two workers here
-# (idle to busy machine), three times MEDIUM's replicas ((0.001 / 0.0006)^2 = 2.8)
+# A fixed amount of work for the chain: each of the 9 points stops at its first round of
+# 66 replicas (the cap). A link's driver stops 12 s after it starts (walltime 60 s, stop
+# margin 48 s), which leaves ~10 s of work on two workers here, ~11 s on a machine three
+# times faster and ~5 s on one three times slower (startup ~2 s here). derived, with the
+# rates above: 594 replicas x 46 032 layers x 26 strips = 202 s of CPU idle, 67 s three
+# times faster = three links of 2 x 11 s at least; a replica lasts at most 0.5 s idle,
+# 1.5 s three times slower, under a third of the slowest link's ~5 s: every link stores
 CHAIN = {
     "axes": {"widths": [2, 3, 4]},
-    "precision": {"target": 0.0006, "max_layers": 6_160_000},
-    "replica": {"layers": 46_000, "checkpoint_seconds": 1},
+    "precision": {"target": 0.01, "max_layers": 66 * 46_000},
+    "replica": {"layers": 46_000, "initial": 66, "checkpoint_seconds": 0.1},
 }
 
 
@@ -70,9 +82,17 @@ def profile(tmp: Path, **extra) -> Path:
     return f
 
 
-def jobs(name: str = "sweepctl-test") -> list[str]:
+def jobs(name: str = "sweepctl-test", state: str | None = None) -> list[str]:
+    """Ids of the queued jobs named ``name`` (only those in ``state``, e.g. RUNNING)."""
     out = subprocess.run(["squeue", "-h", "-o", "%i %j %T"], capture_output=True, text=True)
-    return [ln.split()[0] for ln in out.stdout.splitlines() if name in ln]
+    rows = [ln.split() for ln in out.stdout.splitlines() if name in ln]
+    return [r[0] for r in rows if state is None or r[-1] == state]
+
+
+def checkpoints(store: Path) -> list[Path]:
+    """Checkpoints of replicas in flight (the driver removes them once rows are stored)."""
+    d = store / "checkpoints"
+    return list(d.rglob("*.ckpt")) if d.exists() else []
 
 
 def cancel_all(name: str = "sweepctl") -> None:
@@ -138,15 +158,23 @@ def test_worker_job_cancelled_mid_campaign(medium_reference, tmp_path):
         "test",
         "--profiles",
         profile(tmp_path),
+        "--flush-seconds",
+        "0",  # each replica's row and "finished" event as it arrives
         log=tmp_path / "log",
     )
     try:
+        # the worker job has stored replicas and is in the middle of another (its
+        # checkpoint); with MEDIUM's fixed work most replicas are still to come
         wait_until(
-            lambda: sum(e.get("event") == "finished" for e in events(store)) >= 3 and jobs(),
+            lambda: (
+                sum(e.get("event") == "finished" for e in events(store)) >= 3
+                and jobs(state="RUNNING")
+                and checkpoints(store)
+            ),
             300,
-            "three finished replicas and a running worker job",
+            "three finished replicas, a running worker job and a replica in flight",
         )
-        victims = jobs()
+        victims = jobs(state="RUNNING")
         assert victims
         subprocess.run(["scancel", *victims], check=True)
         assert drv.wait(timeout=900) == 0, (tmp_path / "log").read_text()
@@ -155,30 +183,43 @@ def test_worker_job_cancelled_mid_campaign(medium_reference, tmp_path):
             drv.kill()
     pd.testing.assert_frame_equal(merged(store), medium_reference, check_exact=True)
     ids = {r["batch_job_id"] for r in pq.read_table(store / "replicas").to_pylist()}
-    assert len(ids) >= 2  # a new job took over after the cancelled one
+    # the cancelled job stored some replicas, a new job took over and stored the rest
+    assert set(victims) & ids and len(ids) >= 2, (victims, ids)
 
 
-@pytest.mark.slow  # 3-4 minutes: a one-minute job's TIMEOUT, then the rest of the replica
+@pytest.mark.slow  # ~7 minutes: several one-minute jobs' TIMEOUTs, then the replica's end
 def test_worker_job_hits_walltime_mid_replica(tmp_path):
-    # derived: 154 000 layers of this replica took 6.8 s of CPU on this machine, so
-    # 2.31 M layers need ~100 s, more than a one-minute job can give it even when the
-    # machine is idle: the walltime always cuts it
+    # derived: this replica runs at 7.2e-7 s of CPU per strip-layer here (6.9e-7 at
+    # best), and a one-minute job's TIMEOUT comes 66-88 s after it starts (the
+    # job-completion log), so no job computes more than ~85 s of it. 7.2 M layers x 52
+    # strips = 260 s at the best rate, 87 s on a machine three times faster: the
+    # walltime always cuts it. Three times slower: ~780 s in ~15 jobs, within the limit
     over = {
         "axes": {"widths": [8], "couplings": [0.1]},
-        "precision": {"target": 0.5, "max_layers": 2_310_000},
-        "replica": {"layers": 2_310_000, "strips": 52, "initial": 1, "checkpoint_seconds": 5},
+        "precision": {"target": 0.5, "max_layers": 7_200_000},
+        "replica": {"layers": 7_200_000, "strips": 52, "initial": 1, "checkpoint_seconds": 5},
     }
     recipe = write_recipe(tmp_path / "recipe.toml", over)
     store = tmp_path / "store"
     # one-minute jobs and no early retirement: Slurm's TIMEOUT ends the worker mid-replica
     prof = profile(tmp_path, walltime='"00:01:00"', lifetime_margin='"off"')
-    proc = cli(
-        "run", recipe, "--store", store, "--cluster", "test", "--profiles", prof, timeout=1500
-    )
-    assert proc.returncode == 0, proc.stdout + proc.stderr
+    # the same replica uninterrupted, computed meanwhile on the core the one-replica
+    # worker job leaves idle (afterwards it would add the whole replica's time again)
+    ref = start_cli("run", recipe, "--store", tmp_path / "ref", "--workers", "1")
+    try:
+        proc = cli(
+            "run", recipe, "--store", store, "--cluster", "test", "--profiles", prof, timeout=2400
+        )
+        assert proc.returncode == 0, proc.stdout + proc.stderr
+        assert ref.wait(timeout=2400) == 0
+    finally:
+        if ref.poll() is None:
+            ref.kill()
     row = pq.read_table(store / "replicas").to_pylist()[0]
-    assert row["resumed_at_layer"] > 0
-    assert_row_recomputes(row)  # bit-identical to an uninterrupted replica
+    fresh = pq.read_table(tmp_path / "ref" / "replicas").to_pylist()[0]
+    assert row["resumed_at_layer"] > 0 and fresh["resumed_at_layer"] == 0
+    for col in ("gamma_strips", "exponents"):  # bit-identical to the uninterrupted replica
+        assert np.asarray(row[col]).tobytes() == np.asarray(fresh[col]).tobytes(), col
     # how the worker jobs ended, asked of Slurm (sacct, the controller, or the
     # job-completion log where `scontrol show config` puts it)
     ids = {p.stem.rsplit("-", 1)[-1] for p in (store / "batch-logs").glob("*-*.err")}
@@ -187,9 +228,10 @@ def test_worker_job_hits_walltime_mid_replica(tmp_path):
 
 def test_self_continuing_allocations_complete_a_campaign_unattended(tmp_path):
     recipe = write_recipe(tmp_path / "recipe.toml", CHAIN)
-    assert cli("run", recipe, "--store", tmp_path / "ref", "--workers", "2").returncode == 0
+    ref = cli("run", recipe, "--store", tmp_path / "ref", "--workers", "2", timeout=1200)
+    assert ref.returncode == 0, ref.stdout + ref.stderr
     store = tmp_path / "store"
-    # one-minute allocations that stop 48 s before the walltime: about 8 s of work each
+    # one-minute allocations whose driver stops 12 s after it starts (see CHAIN)
     prof = profile(
         tmp_path, walltime='"00:01:00"', stop_margin='"48s"', python=f'"{sys.executable}"'
     )
@@ -202,11 +244,12 @@ def test_self_continuing_allocations_complete_a_campaign_unattended(tmp_path):
         ends = [r for r in read_links(store) if r.get("event") == "link-end"]
         return ends and ends[-1]["outcome"] != "continued" and ends[-1]
 
-    last = wait_until(ended, 900, "the chain to end", poll=1.0)
+    last = wait_until(ended, 2400, "the chain to end", poll=1.0)
     out = "\n".join(p.read_text() for p in (store / "allocations").glob("*.*"))
     assert last["outcome"] == "complete", out
     links = [r for r in read_links(store) if r.get("event") == "link-start"]
     assert len(links) >= 2, links  # it took several allocations, none submitted by hand
+    assert all(b["rows"] > a["rows"] for a, b in itertools.pairwise(links)), links
     jobs = [r["job"] for r in links]
     assert len(set(jobs)) == len(jobs)
     # each link ended by itself before its walltime (Slurm's own record)
@@ -231,9 +274,17 @@ def test_one_listing_sees_live_jobs_and_slurm_tells_how_they_ended():
         )
         return out.stdout.strip().split(";")[0]
 
-    a, b = sub("sleep 60"), sub("true")
-    wait_until(lambda: job_end_state(b) == "COMPLETED", 60, "the short job to complete")
-    listing = list_jobs("slurm")
-    assert listing is not None and a in listing and b not in listing
-    subprocess.run(["scancel", a], check=True)
+    # a lives until cancelled here, however long b waits for a CPU
+    a, b = sub("sleep 3600"), sub("true")
+    try:
+        wait_until(lambda: job_end_state(b) == "COMPLETED", 120, "the short job to complete")
+        # b may still be shown COMPLETING for a moment after Slurm recorded its end
+        listing = wait_until(
+            lambda: (got := list_jobs("slurm")) is not None and b not in got and got,
+            60,
+            "a listing without the ended job",
+        )
+        assert a in listing, listing
+    finally:
+        subprocess.run(["scancel", a], check=True)
     wait_until(lambda: job_end_state(a) == "CANCELLED", 60, "the cancelled job's end state")
