@@ -10,6 +10,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from sweepctl.fss.criteria import CRITERION_TEXT, leading_order
 from sweepctl.fss.fit import QUANTITIES, Fit, ScalingData
 from sweepctl.fss.procedure import Outcome
 from sweepctl.fss.regularisation import FlatRow, describe_range
@@ -240,6 +241,29 @@ def _attempt(r: ScanRow) -> dict:
     }
 
 
+def ruled_out_summary(o: Outcome) -> list[dict]:
+    """The acceptable fits the physics criterion ruled out ([M8] tests/REFERENCES.md)."""
+    out = []
+    for kind, f in o.ruled_out():
+        v = leading_order(f)
+        out.append(
+            {
+                "kind": kind,
+                **_form(f.model),
+                "n_min": int(f.n_min),
+                "nu": _num(f.values()["nu"]),
+                "y": _num(f.values()["y"]),
+                "Gamma_c": _num(f.values()["Gamma_c"]),
+                "chi2": float(f.chi2),
+                "dof": int(f.dof),
+                "p_value": float(f.p_value),
+                "correction_share": _num(v.share),
+                "at_width": v.width,
+            }
+        )
+    return out
+
+
 def outcome_summary(o: Outcome) -> dict:
     """The JSON of ``fit --json`` and of each slice in ``fits.json``."""
     out: dict = {
@@ -250,6 +274,8 @@ def outcome_summary(o: Outcome) -> dict:
             {"N1": e.N1, "N2": e.N2, "nu": e.nu, "err": e.err, "kind": e.kind} for e in o.effective
         ],
     }
+    out["criterion"] = CRITERION_TEXT
+    out["ruled_out"] = ruled_out_summary(o)
     if not o.acceptable:
         out["verdict"] = "no acceptable form"
         for q in QUANTITIES:
@@ -302,6 +328,7 @@ def outcome_summary(o: Outcome) -> dict:
         stable_forms=[_attempt(r) for r in o.stable_forms],
         correction_sensitivity=o.sensitivity_reason or None,
         fixed_y_fits=[_attempt(r) for r in o.sensitivity if r.acceptable],
+        effective_outside_headline=o.effective_outside() is not None,
         nu_range=_pair(o.value_range("nu")),
         Gamma_c_range=_pair(o.value_range("Gamma_c")),
     )
@@ -397,6 +424,7 @@ def effective_rows(o: Outcome) -> list[list[str]]:
 
 def words(o: Outcome) -> list[str]:
     """The outcome in sentences (printed by ``fit``, written into the report)."""
+    ruled = _ruled_out_words(o)
     if not o.acceptable:
         what = (
             f"orders up to {o.max_orders.label()} at every N_min"
@@ -406,7 +434,8 @@ def words(o: Outcome) -> list[str]:
         return [
             f"no acceptable form: {what} gave no fit with p ≥ 0.1 (and no parameter on a "
             "bound) that is stable when the smallest widths are dropped; no ν or Γ_c is "
-            "reported. The attempts are listed; add widths or points, or raise the orders."
+            "reported. The attempts are listed; add widths or points, or raise the orders.",
+            *ruled,
         ]
     b = o.best
     out = []
@@ -428,7 +457,8 @@ def words(o: Outcome) -> list[str]:
             out.append(
                 f"AMBIGUOUS: the form has {len(o.branches)} acceptable branches with ν = {nus} "
                 "whose intervals do not overlap; the data cannot decide between them, so the "
-                "headline interval covers every branch (no physics criterion rules one out)."
+                "headline interval covers every branch (the leading-order criterion rules "
+                "none of them out)."
             )
         else:
             out.append(
@@ -460,15 +490,39 @@ def words(o: Outcome) -> list[str]:
         out.append(
             f"Correction sensitivity ({o.sensitivity_reason}): refitted with y fixed at each of "
             + ", ".join(f"{y:g}" for y in sorted({r.model.fixed_y for r in o.sensitivity}))
-            + f" at every N_min; {len(ok)} of {len(o.sensitivity)} fixed-y fits are acceptable."
+            + f" at every N_min; {len(ok)} of {len(o.sensitivity)} fixed-y fits are acceptable "
+            "and not ruled out."
+        )
+    out += ruled
+    e = o.effective_outside()
+    if e is not None:
+        out.append(
+            f"Caution: the effective exponent of the two largest widths ({e.N1}, {e.N2}), "
+            f"ν_eff = {e.nu:.3f} ± {e.err:.3f}, lies outside the headline interval: "
+            "corrections to scaling are still large at these widths, or the form is wrong; "
+            "wider strips decide."
         )
     nlo, nhi = o.value_range("nu")
     glo, ghi = o.value_range("Gamma_c")
     out.append(
-        f"Over every acceptable fit (branches, stable forms, fixed-y fits) ν ranges over "
+        f"Over every acceptable fit not ruled out (branches, stable forms, fixed-y fits) ν "
+        f"ranges over "
         f"[{nlo:.3f}, {nhi:.3f}] and Γ_c over [{glo:.4f}, {ghi:.4f}]."
     )
     return out
+
+
+def _ruled_out_words(o: Outcome) -> list[str]:
+    ruled = o.ruled_out()
+    if not ruled:
+        return []
+    nus = sorted(f.values()["nu"] for _, f in ruled)
+    shares = [leading_order(f).share for _, f in ruled]
+    return [
+        f"Ruled out: {len(ruled)} acceptable fit(s) with ν from {nus[0]:.3f} to {nus[-1]:.3f}, "
+        f"whose irrelevant-field terms carry {min(shares):.1f}–{max(shares):.1f} times the "
+        "relevant field's x-dependence at the largest width. Criterion: " + CRITERION_TEXT + "."
+    ]
 
 
 def nmin_rows(o: Outcome) -> list[ScanRow]:

@@ -94,6 +94,7 @@ _MAX_WIDTH = 4096
 _MAX_STRIPS = 4096
 _MAX_COUPLING = 10.0
 _MAX_POINTS = 1_000_000
+_MAX_INITIAL = 10_000
 
 
 class RecipeError(SweepctlError, ValueError):
@@ -419,7 +420,14 @@ def _couplings(src: str, v: Any) -> tuple[float, ...]:
                 raise RecipeError(field, v, f"a range needs start, stop and num (missing {k})", src)
         a = _num(src, f"{field}.start", v["start"], "must be a number")
         b = _num(src, f"{field}.stop", v["stop"], "must be a number")
-        n = _int(src, f"{field}.num", v["num"], 1, "must be an integer >= 1")
+        n = _int(
+            src,
+            f"{field}.num",
+            v["num"],
+            1,
+            f"a whole number of couplings from 1 to {_MAX_POINTS:_}, e.g. num = 9",
+            _MAX_POINTS,
+        )
         if n > 1 and not b > a:
             raise RecipeError(
                 f"{field}.stop",
@@ -873,8 +881,9 @@ def parse_recipe(data: dict, source: str = "recipe") -> Recipe:
         "replica.initial",
         r.get("initial", 2),
         1,
-        "replicas in a point's first round, >= 1",
-        10_000,
+        f"a whole number of replicas in a point's first round, from 1 to {_MAX_INITIAL:_}, "
+        "e.g. initial = 2",
+        _MAX_INITIAL,
     )
     ck = _num(
         src,

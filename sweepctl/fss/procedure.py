@@ -11,23 +11,29 @@ Steps (numpy/scipy only; the caller passes a ``mapper`` to spread resampling):
    orders, that one form is fitted (at the given N_min).
 2. **Branches.**  The chosen window is explored again more thoroughly; every distinct
    minimum with p ≥ 0.1 and no parameter on a bound is a branch (at most
-   :data:`MAX_BRANCHES`, lowest χ² first).  No physics criterion is applied to rule a
-   branch out: the headline interval covers all of them.
+   :data:`MAX_BRANCHES`, lowest χ² first), unless the one physics criterion rules it
+   out: leading-order dominance (:mod:`sweepctl.fss.criteria`; [M8]
+   tests/REFERENCES.md) — its irrelevant-field terms may not carry more of Γ's
+   x-dependence at the largest width than the relevant field.  The headline interval
+   covers every branch that is not ruled out; the ruled-out fits are listed.  A stable
+   form all of whose acceptable minima are ruled out is passed over for the next.
 3. **Intervals.**  ``resamples`` (default 1000: ≈ 25 draws in each 2.5 % tail) resampled
    data sets are refitted from every branch's optimum (:func:`branch_intervals`); the
    headline interval of each quantity is the hull of the lowest-χ² refits' percentile
    interval and of every branch's own interval.
 4. **Model choice.**  Every power-law form with a stable window and at most
    :data:`SPREAD_EXTRA_PARAMS` more parameters than the choice gives its acceptable
-   minima there; their range of ν and Γ_c is the model-choice spread, reported beside the
-   statistical interval.  The data are **ambiguous** when two branches' ν intervals do
-   not overlap, or when a stable form's (linearised) ν interval misses the headline
-   interval: both are listed, so a reader sees the alternatives.
+   minima there (those not ruled out); their range of ν and Γ_c is the model-choice
+   spread, reported beside the statistical interval.  The data are **ambiguous** when
+   two branches' ν intervals do not overlap, or when a stable form's (linearised) ν
+   interval misses the headline interval: both are listed, so a reader sees the
+   alternatives.
 5. **Correction sensitivity.**  When the data cannot fit y — the choice has no free y, y
    ended on a bound, or its interval is wider than :data:`Y_UNRESOLVED_WIDTH` or reaches
    above ``Y_DESIGN[1]`` — the chosen orders (with an irrelevant field) are refitted with y
    fixed at each of :data:`Y_GRID` at every N_min.  ``nu_range`` and ``Gamma_c_range``
-   span every acceptable fit: branches, stable forms and acceptable fixed-y fits.
+   span every acceptable fit that is not ruled out: branches, stable forms and fixed-y
+   fits.
 6. **Effective exponents** from adjacent widths (:mod:`sweepctl.fss.effective`).
 
 When no form is acceptable the outcome says so (``acceptable`` False) and carries the
@@ -40,6 +46,7 @@ import math
 from collections.abc import Callable
 from dataclasses import dataclass, field
 
+from sweepctl.fss.criteria import leading_order
 from sweepctl.fss.effective import EffectiveExponent, effective_exponents
 from sweepctl.fss.fit import (
     NU_DESIGN,
@@ -79,6 +86,15 @@ def _acceptable(f: Fit) -> bool:
     return f.p_value >= P_ACCEPT and not f.at_bound
 
 
+def _admissible(f: Fit) -> bool:
+    """Acceptable and not ruled out by leading-order dominance ([M8] tests/REFERENCES.md)."""
+    return _acceptable(f) and leading_order(f).ok
+
+
+def _row_fits(r: ScanRow) -> list[Fit]:
+    return r.minima or ([r.fit] if r.fit is not None else [])
+
+
 @dataclass
 class Branch:
     """One acceptable minimum of the chosen form, with its own resampled intervals."""
@@ -103,6 +119,10 @@ class Outcome:
     sensitivity: list[ScanRow] = field(default_factory=list)
     sensitivity_reason: str = ""
     effective: list[EffectiveExponent] = field(default_factory=list)
+    #: acceptable minima of the chosen window ruled out by the criterion
+    rejected_branches: list[Fit] = field(default_factory=list)
+    #: stable windows passed over because every acceptable minimum was ruled out
+    rejected_forms: list[ScanRow] = field(default_factory=list)
 
     @property
     def acceptable(self) -> bool:
@@ -133,8 +153,8 @@ class Outcome:
                     f.values()["nu"] - Z95 * f.linear_error("nu"),
                     f.values()["nu"] + Z95 * f.linear_error("nu"),
                 )
-                for f in (r.minima or [r.fit])
-                if _acceptable(f)
+                for f in _row_fits(r)
+                if _admissible(f)
             ]
             if cis and not any(max(a, lo) <= min(b, hi) for a, b in cis):
                 out.append(r)
@@ -145,6 +165,20 @@ class Outcome:
         """The data cannot decide ν: branches of the chosen form disagree, or another
         stable form disagrees with the headline interval."""
         return self.acceptable and (self.branches_disagree or bool(self.disagreeing_forms()))
+
+    def effective_outside(self) -> EffectiveExponent | None:
+        """The effective exponent of the two largest widths when its 95 % interval misses
+        the headline interval of ν (corrections are large there, or the form is wrong),
+        else None.  A warning for the reader, not part of any interval."""
+        if not self.acceptable or not self.effective:
+            return None
+        e = self.effective[-1]
+        if not (math.isfinite(e.nu) and math.isfinite(e.err)):
+            return None
+        lo, hi = self.interval("nu")
+        if e.nu + Z95 * e.err < lo or e.nu - Z95 * e.err > hi:
+            return e
+        return None
 
     def interval(self, q: str) -> tuple[float, float]:
         """Headline interval of ``q``: the hull of the lowest-χ² refits' interval and of
@@ -157,7 +191,7 @@ class Outcome:
         return (min(p[0] for p in parts), max(p[1] for p in parts))
 
     def _spread_fits(self) -> list[Fit]:
-        return [f for r in self.stable_forms for f in (r.minima or [r.fit]) if _acceptable(f)]
+        return [f for r in self.stable_forms for f in _row_fits(r) if _admissible(f)]
 
     def model_spread(self, q: str) -> tuple[float, float]:
         """Range of ``q`` over the acceptable minima of the stable forms (step 4)."""
@@ -167,7 +201,27 @@ class Outcome:
         return (min(vals), max(vals)) if vals else (math.nan, math.nan)
 
     def sensitivity_fits(self) -> list[Fit]:
-        return [f for r in self.sensitivity for f in (r.minima or [r.fit]) if _acceptable(f)]
+        return [f for r in self.sensitivity for f in _row_fits(r) if _admissible(f)]
+
+    def ruled_out(self) -> list[tuple[str, Fit]]:
+        """Every acceptable fit the criterion ruled out, with where it came from
+        (``branch``, ``form`` or ``fixed y``), lowest χ² first within each."""
+        out = [("branch", f) for f in self.rejected_branches]
+        out += [("form", f) for r in self.rejected_forms for f in _row_fits(r) if _acceptable(f)]
+        for kind, rows in (("form", self.stable_forms), ("fixed y", self.sensitivity)):
+            out += [
+                (kind, f)
+                for r in rows
+                for f in _row_fits(r)
+                if _acceptable(f) and not leading_order(f).ok
+            ]
+        seen, unique = set(), []
+        for kind, f in out:
+            key = (f.model, f.n_min, round(f.chi2, 9))
+            if key not in seen:
+                seen.add(key)
+                unique.append((kind, f))
+        return unique
 
     def value_range(self, q: str) -> tuple[float, float]:
         """Range of ``q`` over every acceptable fit: branches, stable forms, fixed-y fits."""
@@ -242,18 +296,24 @@ def run(
         n0 = n_min if n_min is not None else widths[0]
         minima = explore(data, model, n_min=n0, per_bin=BRANCH_PER_BIN)
         row = ScanRow(model, n0, minima[0], minima=minima)
-        ok = any(_acceptable(f) for f in minima)
+        ok = any(_admissible(f) for f in minima)
         out = Outcome(data, symmetric, "form", None, [row], row if ok else None)
+        if not ok:
+            out.rejected_branches = [
+                f for f in minima if _acceptable(f) and not leading_order(f).ok
+            ]
     else:
         models = candidate_models(max_orders, symmetric, with_log=False)
         use = [w for w in widths if n_min is None or w >= n_min]
         rows = _fit_rows(data, models, use, progress, "scanning")
         stable = stable_windows(rows)
-        choice = stable[0] if stable else None
+        passed = [r for r in stable if any(_admissible(f) for f in _row_fits(r))]
+        choice = passed[0] if passed else None
         out = Outcome(data, symmetric, "scan", max_orders, rows, choice)
+        out.rejected_forms = [r for r in stable if r not in passed]
         if choice is not None:
             out.stable_forms = [
-                r for r in stable if r.model.n_params <= choice.model.n_params + SPREAD_EXTRA_PARAMS
+                r for r in passed if r.model.n_params <= choice.model.n_params + SPREAD_EXTRA_PARAMS
             ]
     out.effective = effective_exponents(data, symmetric)
     if out.choice is None:
@@ -263,7 +323,12 @@ def run(
     minima = explore(data, c.model, n_min=c.n_min, per_bin=BRANCH_PER_BIN)
     minima += [f for f in c.minima if not any(abs(f.chi2 - g.chi2) < 1e-9 for g in minima)]
     minima.sort(key=lambda f: f.chi2)
-    branches = [f for f in minima if _acceptable(f)]
+    branches = [f for f in minima if _admissible(f)]
+    out.rejected_branches = [f for f in minima if _acceptable(f) and not leading_order(f).ok]
+    if not branches:
+        # the thorough exploration found only ruled-out minima: no headline
+        out.choice = None
+        return out
     kept: list[Fit] = []
     for f in branches:
         if not any(_close_nu(f, g) for g in kept):

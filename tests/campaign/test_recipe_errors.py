@@ -120,7 +120,7 @@ def test_malformed_recipe(name, bad, field, small_store, tmp_path):
     else:
         write_recipe(path, bad)
     proc = cli("run", path, "--store", store)
-    assert proc.returncode != 0
+    assert proc.returncode == 2, proc.stderr  # README: bad input exits 2
     assert "Traceback" not in proc.stderr + proc.stdout
     lines = [ln for ln in proc.stderr.strip().splitlines() if ln.strip()]
     assert len(lines) == 1, proc.stderr
@@ -166,6 +166,18 @@ def test_messages_keep_their_table_names(tmp_path):
             "greater than start = 0.2; swap them",
         ),
         ({"axes": {"couplings": [11.0]}}, "axes.couplings[0] = 11.0", "-10 <= x <= 10"),
+        # a range's size is bounded before its values are made (10^8 once filled the
+        # memory of a 24 GiB machine)
+        (
+            {"axes": {"couplings": {"start": 0.0, "stop": 0.1, "num": 100_000_000}}},
+            "axes.couplings.num = 100000000",
+            "from 1 to 1_000_000",
+        ),
+        (
+            {"replica": {"initial": 20000}},
+            "replica.initial = 20000",
+            "from 1 to 10_000",
+        ),
         # the goal's fixes name the allowed range and an example
         (
             {"goal": {"nu_halfwidth": 7, "cpu_hours": 10}},

@@ -33,41 +33,46 @@ NU_CC = 2.593
 NU_PERCOLATION = 4 / 3
 
 
-@pytest.mark.slow
-@pytest.mark.xfail(
-    reason=(
-        "known, open (measured 2026-12-02 with the default procedure): stable choice "
-        "4,0,3,0 at N >= 16, nu = 2.978 [2.680, 3.233], p = 0.18, no free y; all 16 fits "
-        "with y fixed (-2..-0.1) are acceptable but their lowest minimum is the branch in "
-        "which psi0^2 psi1 plays the relevant field (nu = 0.68-1.60), so the error budget "
-        "[0.68, 3.23] holds [P1] yet does not exclude percolation's 4/3 ([P9]); a physics "
-        "criterion against that branch is not implemented; band not widened"
-    ),
-    strict=False,
-)
-def test_clean_network_nu_in_published_band(tmp_path):
+@pytest.fixture(scope="module")
+def clean_fit(tmp_path_factory):
+    """The campaign (slow: ~5 minutes of CPU) and the default procedure on it."""
+    tmp_path = tmp_path_factory.mktemp("nu")
     store = tmp_path / "store"
     proc = cli("run", write_recipe(tmp_path / "r.toml", RECIPE), "--store", store, timeout=3600)
     assert proc.returncode == 0, proc.stdout + proc.stderr
     # The default procedure: scan orders up to 4,1,3,1 and every N_min in the duality-
     # symmetric form (the default at p_block = p_open), stable choice, branches, resampled
-    # refit, fixed-y sensitivity.
+    # refit, fixed-y sensitivity, leading-order criterion.
     chosen = tmp_path / "chosen.json"
     proc = cli("fit", store, "--out", chosen)
     assert proc.returncode == 0, proc.stdout + proc.stderr
-    res = json.loads(chosen.read_text())
     print(proc.stdout)
-    assert res["acceptable"] and res["p_value"] >= 0.1, res  # [M5]: only p ≥ 0.1
-    assert res["nu_ci"][0] <= res["nu"] <= res["nu_ci"][1]
-    # The band is this campaign's own error budget, as the procedure reports it: the
-    # headline interval (statistical, every branch) joined with the range over every
-    # acceptable fit (stable forms, fixed-y fits). It is fixed by the procedure, not by
-    # this test, and was set before the procedure was run on this campaign. [P1] must
-    # lie inside, and the band must exclude percolation's 4/3 ([P9]) to mean anything.
+    return store, tmp_path, json.loads(chosen.read_text())
+
+
+def _budget(res: dict) -> tuple[float, float]:
+    """This campaign's own error budget, as the procedure reports it: the headline
+    interval (statistical, every branch) joined with the range over every acceptable fit
+    not ruled out (stable forms, fixed-y fits). It is fixed by the procedure, not by this
+    test, and was set before the procedure was run on this campaign."""
     lo = min(res["nu_ci"][0], res["nu_range"][0])
     hi = max(res["nu_ci"][1], res["nu_range"][1])
-    assert lo <= NU_CC <= hi, (lo, hi, res)
+    return lo, hi
+
+
+@pytest.mark.slow
+def test_clean_network_fit_is_acceptable_and_excludes_percolation(clean_fit):
+    store, tmp_path, res = clean_fit
+    assert res["acceptable"] and res["p_value"] >= 0.1, res  # [M5]: only p ≥ 0.1
+    assert res["nu_ci"][0] <= res["nu"] <= res["nu_ci"][1]
+    # [P9]: a budget that does not exclude 4/3 cannot tell this transition from
+    # percolation. Before the leading-order criterion ([M8]) the fixed-y fits' lowest
+    # minima, in which ψ0²ψ1 carries the x-dependence (ν = 0.68–1.60, measured
+    # 2026-12-02), put the budget's lower end at 0.68.
+    lo, hi = _budget(res)
     assert lo > NU_PERCOLATION, (lo, hi, res)
+    for r in res["ruled_out"]:
+        assert r["correction_share"] > 1.0, r  # [M8]: only such fits are ruled out
     # The same form refitted without the symmetry: x_c is free and must come out at 0.
     o = res["orders"]
     general = tmp_path / "general.json"
@@ -86,3 +91,21 @@ def test_clean_network_nu_in_published_band(tmp_path):
     gen = json.loads(general.read_text())
     # [K7] tests/REFERENCES.md: self-duality at p_block = p_open puts x_c at 0
     assert gen["x_c_ci"][0] <= 0.0 <= gen["x_c_ci"][1], gen
+
+
+@pytest.mark.slow
+@pytest.mark.xfail(
+    strict=True,
+    reason=(
+        "known, open (measured 2026-12-03): widths 4-32 at 0.3 % give the stable choice "
+        "4,0,3,0 at N >= 16 (two widths), nu = 2.978 [2.680, 3.232]; fixed-y fits not "
+        "ruled out span 2.688-2.926; the budget [2.680, 3.232] misses [P1]'s 2.593 while "
+        "the effective exponent of widths 16, 32 is 2.415 +- 0.032: corrections at these "
+        "widths are not resolved. A campaign to N = 64 costs ~4.7 CPU-hours (plan); band "
+        "not widened"
+    ),
+)
+def test_clean_network_nu_budget_holds_the_published_value(clean_fit):
+    _, _, res = clean_fit
+    lo, hi = _budget(res)
+    assert lo <= NU_CC <= hi, (lo, hi, res)  # [P1] tests/REFERENCES.md
