@@ -52,3 +52,16 @@ def test_only_files_inside_the_repository_are_cited():
             if cited == "REFERENCES.md" and path.parent != REFS.parent:
                 bad.append((path.relative_to(ROOT).as_posix(), cited))
     assert not bad, bad
+
+
+def test_every_numpydoc_reference_names_its_entry():
+    # a ".. [n] ..." item in a docstring must say which entry of the references file it is
+    bad = []
+    item = re.compile(r"^\s*\.\. \[\d+\](.*(?:\n(?!\s*\.\. \[|\s*$|\s*\"\"\").*)*)", re.M)
+    for path in _sources():
+        if path.suffix != ".py":
+            continue
+        for m in item.finditer(path.read_text(encoding="utf-8")):
+            if not CITATION.search(m.group(1)):
+                bad.append((path.relative_to(ROOT).as_posix(), m.group(0).strip()[:60]))
+    assert not bad, bad

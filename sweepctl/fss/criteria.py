@@ -24,7 +24,7 @@ form without an irrelevant field has C = 0 and always passes.
 References
 ----------
 .. [1] K. Slevin and T. Ohtsuki, "Corrections to scaling at the Anderson transition",
-   Phys. Rev. Lett. 82, 382 (1999).
+   Phys. Rev. Lett. 82, 382 (1999) ([M5] tests/REFERENCES.md).
 """
 
 from __future__ import annotations

@@ -72,9 +72,9 @@ References
 ----------
 .. [1] K. Slevin and T. Ohtsuki, Phys. Rev. Lett. 82, 382 (1999) ([M5] tests/REFERENCES.md).
 .. [2] A. C. Davison and D. V. Hinkley, *Bootstrap Methods and their Application*
-   (Cambridge University Press, 1997), §2.4 and §5.2.
+   (Cambridge University Press, 1997), §2.4 and §5.2 ([S3] tests/REFERENCES.md).
 .. [3] F. E. Satterthwaite, "An approximate distribution of estimates of variance
-   components", Biometrics Bulletin 2, 110 (1946).
+   components", Biometrics Bulletin 2, 110 (1946) ([S4] tests/REFERENCES.md).
 """
 
 from __future__ import annotations

@@ -25,9 +25,10 @@ tests/REFERENCES.md).
 References
 ----------
 .. [1] K. Slevin and T. Ohtsuki, "Corrections to scaling at the Anderson transition",
-   Phys. Rev. Lett. 82, 382 (1999).
+   Phys. Rev. Lett. 82, 382 (1999) ([M5] tests/REFERENCES.md).
 .. [2] G. H. Golub and V. Pereyra, "The differentiation of pseudo-inverses and nonlinear
-   least squares problems whose variables separate", SIAM J. Numer. Anal. 10, 413 (1973).
+   least squares problems whose variables separate", SIAM J. Numer. Anal. 10, 413 (1973)
+   ([M7] tests/REFERENCES.md).
 """
 
 from __future__ import annotations

@@ -20,8 +20,9 @@ every bit of the result, is independent of how the layers are chunked.
 
 References
 ----------
-.. [1] G. Benettin, L. Galgani, A. Giorgilli, J.-M. Strelcyn, Meccanica 15, 9 (1980).
-.. [2] A. MacKinnon and B. Kramer, Z. Phys. B 53, 1 (1983).
+.. [1] G. Benettin, L. Galgani, A. Giorgilli, J.-M. Strelcyn, Meccanica 15, 9 (1980)
+   ([M1] tests/REFERENCES.md).
+.. [2] A. MacKinnon and B. Kramer, Z. Phys. B 53, 1 (1983) ([M1] tests/REFERENCES.md).
 """
 
 from __future__ import annotations

@@ -16,9 +16,10 @@ Conventions (see DEVELOPERS.md, "Physics conventions"):
 
 References
 ----------
-.. [1] J. T. Chalker and P. D. Coddington, J. Phys. C 21, 2665 (1988).
+.. [1] J. T. Chalker and P. D. Coddington, J. Phys. C 21, 2665 (1988) ([P8]
+   tests/REFERENCES.md).
 .. [2] I. Gruzberg, A. Klümper, W. Nuding, A. Sedrakyan, Phys. Rev. B 95, 125414
-   (2017).
+   (2017) ([P6] tests/REFERENCES.md).
 """
 
 from __future__ import annotations
