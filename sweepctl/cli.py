@@ -319,7 +319,7 @@ def plan(
         from sweepctl.campaign.plan_store import preview_on_store
 
         frozen, preview = preview_on_store(rec, store, str(recipe), cost)
-    pl = make_plan(rec, cost, origin, frozen)
+    pl = make_plan(rec, cost, origin, frozen, source=str(recipe))
     if preview is not None:
         pl["store"] = {"path": str(store), **preview.to_json()}
     if json_out:

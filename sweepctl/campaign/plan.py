@@ -225,12 +225,16 @@ def freeze(
             raise RecipeError(
                 field_name,
                 recipe.max_cpu_hours if recipe.max_cpu_hours is not None else fz.cap_for(pts[0]),
-                f"at N = {n} the cap allows {fz.max_replicas(pts[0])} replicas of {fz.strips} "
-                f"strips, fewer than the {fz.min_strip_estimates} strip estimates an error "
-                f"bar needs; allow at least {need:,} layers per point",
+                f"at N = {n} the cap allows {_count(fz.max_replicas(pts[0]), 'replica')} of "
+                f"{fz.strips} strips, fewer than the {fz.min_strip_estimates} strip estimates "
+                f"an error bar needs; allow at least {need:_} layers per point",
                 source,
             )
     return fz
+
+
+def _count(n: int, noun: str) -> str:
+    return f"{n} {noun}" + ("" if n == 1 else "s")
 
 
 def _slice_seconds(cost: CostModel, pts: list[Point], strips: int) -> float:
@@ -403,7 +407,11 @@ def expected_replicas(width: int, target: float, layers: int, strips: int, cap: 
 
 
 def make_plan(
-    recipe: Recipe, cost: CostModel, cost_source: str, frozen: Frozen | None = None
+    recipe: Recipe,
+    cost: CostModel,
+    cost_source: str,
+    frozen: Frozen | None = None,
+    source: str = "recipe",
 ) -> dict:
     """The plan of a recipe as plain data (what ``sweepctl plan`` shows).
 
@@ -411,7 +419,7 @@ def make_plan(
     a new store would get. CPU is priced per point (:class:`CostModel`: disorder, ε and
     coupling set the QR schedule); replica counts are the error model's a-priori guess.
     """
-    fz = frozen if frozen is not None else freeze(recipe, cost, None)
+    fz = frozen if frozen is not None else freeze(recipe, cost, None, source=source)
     points = recipe.points()
     groups: dict[str, dict] = {}
     per_point = []

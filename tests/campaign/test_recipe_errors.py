@@ -234,3 +234,17 @@ def test_second_driver_refused(small_store, tmp_path):
     proc = cli("run", recipe, "--store", store)
     assert proc.returncode == 2
     assert "in use by the driver" in proc.stderr and "Traceback" not in proc.stderr
+
+
+def test_plan_names_the_file_for_a_cap_below_the_strip_minimum(tmp_path):
+    # one replica of 26 strips (BASE) is fewer than the 51 strip values an error bar
+    # needs ([S1] tests/REFERENCES.md); plan has no store, the message still names the file
+    path = write_recipe(tmp_path / "capped.toml", {"precision": {"max_layers": 600}})
+    proc = cli("plan", path)
+    assert proc.returncode == 2, proc.stderr
+    line = proc.stderr.strip()
+    assert "capped.toml: precision.max_layers = " in line, line
+    assert "recipe:" not in line and "1 replicas" not in line, line
+    # the number in the fix is valid TOML (underscores, not commas)
+    need = re.search(r"allow at least ([0-9_]+) layers", line)
+    assert need and "," not in need.group(1), line
