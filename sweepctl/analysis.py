@@ -7,7 +7,6 @@ Dask cluster for the resampling, progress reports and the files of ``sweepctl re
 from __future__ import annotations
 
 import contextlib
-import json
 import os
 import time
 from collections.abc import Callable, Iterator
@@ -23,6 +22,7 @@ from sweepctl.fss.fit import FitError, ScalingData
 from sweepctl.fss.model import Orders
 from sweepctl.fss.procedure import DEFAULT_MAX_ORDERS, DEFAULT_RESAMPLES, Outcome
 from sweepctl.fss.regularisation import epsilon_check
+from sweepctl.jsonout import json_text
 
 Progress = Callable[[str, int, int], None]
 
@@ -303,6 +303,6 @@ def build_report(
         s.label: (rp.outcome_summary(s.outcome) if s.outcome is not None else {"error": s.note})
         for s in reports
     }
-    (out / "fits.json").write_text(json.dumps(summary, indent=2) + "\n")
+    (out / "fits.json").write_text(json_text(summary) + "\n")  # strict, like every --json
     md, html_path = rp.write_report(out, prov, reports, flat_rows, ranges, eps_plots)
     return md, html_path, all_plots

@@ -15,6 +15,7 @@ from rich.table import Table
 
 from sweepctl import __version__
 from sweepctl.errors import SweepctlError
+from sweepctl.jsonout import json_text
 
 app = typer.Typer(
     help="Seeded, resumable Lyapunov-exponent campaigns for network models.",
@@ -54,33 +55,6 @@ def _fail(message: str, code: int = 2) -> None:
     # escaped: messages name TOML tables like [precision], which are markup to rich
     err_console.print(f"[bold red]error:[/] {escape(message)}", highlight=False, soft_wrap=True)
     sys.exit(code)
-
-
-def _strict(obj):
-    """``obj`` with every non-finite float as ``None`` and NumPy scalars as Python ones:
-    strict JSON (RFC 8259) has no NaN or Infinity, and strict parsers reject them."""
-    import math
-
-    import numpy as np
-
-    if isinstance(obj, dict):
-        return {str(k): _strict(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_strict(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return _strict(obj.tolist())
-    if isinstance(obj, np.generic):
-        obj = obj.item()
-    if isinstance(obj, float) and not math.isfinite(obj):
-        return None
-    if obj is None or isinstance(obj, (bool, int, float, str)):
-        return obj
-    return str(obj)
-
-
-def json_text(obj) -> str:
-    """The one JSON convention of every command: strict JSON, indented, one document."""
-    return json.dumps(_strict(obj), indent=2, allow_nan=False)
 
 
 def _print_json(obj) -> None:

@@ -173,7 +173,16 @@ def _matches(row: dict, sel: dict[str, float]) -> bool:
 def seed_trace(store: Store, selector: dict[str, float]) -> list[dict]:
     """Every replica row behind the selected point(s), with its seed and provenance."""
     t = store.read_replicas()
-    rows = [r for r in t.to_pylist() if _matches(r, selector)]
+    every = t.to_pylist()
+    rows = [r for r in every if _matches(r, selector)]
+    if not rows:
+        sel = ",".join(f"{'N' if k == 'width' else k}={v:g}" for k, v in selector.items())
+        widths = sorted({int(r["width"]) for r in every})
+        xs = sorted({float(r["x"]) for r in every})
+        raise SweepctlError(
+            f"--point {sel}: no stored replica matches; the store holds N in {widths} and "
+            f"x in [{', '.join(f'{x:g}' for x in xs[:12])}{', …' if len(xs) > 12 else ''}]"
+        )
     rows.sort(key=lambda r: (r["point_key"], r["replica"]))
     keep = (
         "point_key",

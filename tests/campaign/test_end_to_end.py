@@ -55,6 +55,11 @@ def test_run_merge_status_audit(reference_store):
     assert "0 problem(s)" in au.stdout and "audit passed" in au.stdout
     assert au.stdout.count("identical:") == 2  # the selected point has 2 replicas
     assert "MISMATCH" not in au.stdout
+    # a point the store does not hold is an input error, not an empty audit
+    nope = cli("audit", reference_store, "--point", "N=99,x=0")
+    assert nope.returncode == 2, nope.stdout + nope.stderr
+    assert "--point N=99,x=0: no stored replica matches" in nope.stderr, nope.stderr
+    assert "Traceback" not in nope.stderr
 
     kinds = {e["event"] for e in events(reference_store)}
     assert {"run-start", "cluster", "submitted", "started", "finished", "run-end"} <= kinds

@@ -31,6 +31,10 @@ def small_store(tmp_path_factory):
     return store
 
 
+def _refuse_constant(name):
+    raise AssertionError(f"{name} is not strict JSON")
+
+
 def test_report_writes_plots_and_summaries(small_store, tmp_path):
     before = snapshot(small_store)
     out = tmp_path / "report"
@@ -69,7 +73,8 @@ def test_report_writes_plots_and_summaries(small_store, tmp_path):
     ):
         assert needle in md, needle
     assert "<table>" in html and '<img src="collapse_pb0_po0_eps1e-06.png"' in html
-    fits = json.loads((out / "fits.json").read_text())
+    # fits.json follows the strict JSON convention of --json (RFC 8259: no NaN/Infinity)
+    fits = json.loads((out / "fits.json").read_text(), parse_constant=_refuse_constant)
     assert len(fits) == 4
     sections = _sections(md)
     assert set(fits) <= set(sections), (list(fits), list(sections))
