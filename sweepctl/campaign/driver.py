@@ -15,6 +15,7 @@ written, so no row can be written twice.
 from __future__ import annotations
 
 import contextlib
+import importlib.util
 import logging
 import math
 import os
@@ -367,6 +368,9 @@ class Driver:
         self.say({"kind": "log", "message": f"connected: {self.conn.kind}"})
         if self.options.dashboard:
             where = self.conn.dashboard or "not served (the scheduler has no HTTP server)"
+            if self.conn.dashboard and importlib.util.find_spec("bokeh") is None:
+                # Dask serves its health routes without bokeh, but no pages
+                where += " (its pages need bokeh: pip install 'sweepctl[dashboard]')"
             self.say({"kind": "log", "message": f"dashboard: {where}"})
         self.futures = as_completed(with_results=False)
 

@@ -41,6 +41,11 @@ def test_dashboard_on_loopback_with_its_address_printed(tmp_path):
             drv.kill()
         kill_pids(worker_pids(store))
     assert f"dashboard: {addr}" in log.read_text()
+    # without bokeh the address answers but has no pages: the message says what to install
+    import importlib.util
+
+    hint = "its pages need bokeh: pip install 'sweepctl[dashboard]'"
+    assert (hint in log.read_text()) == (importlib.util.find_spec("bokeh") is None)
 
 
 def test_no_dashboard_unless_asked(tmp_path):
