@@ -160,3 +160,20 @@ def test_two_drivers_taking_over_a_dead_drivers_lock_never_overlap(tmp_path):
     assert codes in ([0, 0], [0, 2]), logs  # the second either waited its turn or was refused
     keys = _raw_keys(store)
     assert len(keys) == len(set(keys))
+
+
+def test_a_met_target_does_not_stop_a_point_before_51_strip_values(tmp_path):
+    # [S1] tests/REFERENCES.md: σ̂ from n values has relative error 1/√(2(n − 1)); 10 %
+    # needs n ≥ 51. 8 strips per replica and a target of 50 % that the first round of 2
+    # replicas (16 values) already meets: the rule must go on to ceil(51/8) = 7 replicas
+    over = {
+        "axes": {"widths": [2], "couplings": [0.0]},
+        "precision": {"target": 0.5, "max_layers": 100 * 600},
+        "replica": {"strips": 8, "initial": 2},
+    }
+    store = tmp_path / "store"
+    proc = cli("run", write_recipe(tmp_path / "r.toml", over), "--store", store, "--workers", "1")
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    rows = pq.read_table(store / "replicas").to_pylist()
+    assert len(rows) == 7, [r["replica"] for r in rows]
+    assert sum(len(r["gamma_strips"]) for r in rows) == 56 >= 51
