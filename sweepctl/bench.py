@@ -250,19 +250,37 @@ def cost_model(widths: list[int], path: str | Path | None = None, measure: bool 
                 "sweepctl bench --out FILE"
             ) from None
     cached = calibration_path()
+    known: list[dict] = []
     if cached.exists():
         try:
             data = json.loads(cached.read_text())
             if data.get("format") == CALIBRATION_FORMAT:  # an older one is measured again
-                return CostModel(data["widths"]), f"calibration {cached}"
-        except (OSError, ValueError, KeyError, TypeError):
-            pass
+                known = list(data["widths"])
+                have = sorted(int(r["width"]) for r in known)
+                # a width outside the cached range would be priced by extrapolation
+                # (QR ∝ N³ from two small widths can be far off): measure it too
+                outside = sorted({int(w) for w in widths if int(w) > have[-1] or int(w) < have[0]})
+                if not outside or not measure:
+                    note = (
+                        f" (extrapolated to N = {', '.join(map(str, outside))})" if outside else ""
+                    )
+                    return CostModel(known), f"calibration {cached}{note}"
+                widths = outside
+        except (OSError, ValueError, KeyError, TypeError, IndexError):
+            known = []
     if not measure:
         return None, "no calibration stored"
-    ws = sorted({int(w) for w in widths} | {4})
+    ws = sorted({int(w) for w in widths} | ({4} if not known else set()))
     rows = bench_widths(ws, strips=8, seconds=0.15)
     payload = calibration_payload(rows)
+    if known:
+        payload["widths"] = sorted(
+            [r for r in known if int(r["width"]) not in ws] + payload["widths"],
+            key=lambda r: int(r["width"]),
+        )
     origin = f"measured now at N = {', '.join(map(str, ws))}"
+    if known:
+        origin = f"calibration {cached}, with N = {', '.join(map(str, ws))} measured now"
     try:
         cached.parent.mkdir(parents=True, exist_ok=True)
         tmp = cached.with_suffix(".tmp")

@@ -83,6 +83,14 @@ def test_plan_says_where_it_keeps_the_calibration_it_measured(tmp_path):
     assert proc.returncode == 0, proc.stderr
     (saved,) = (cache / "sweepctl").glob("calibration-*.json")
     assert f"saved to {saved}" in proc.stdout
+    # a wider strip than the cache holds is measured, not extrapolated from N = 2-4
+    # (QR ∝ N³ from two small widths), and added to the cache
+    wide = write_recipe(tmp_path / "wide.toml", {"axes": {"widths": [2, 3, 24]}})
+    proc = cli("plan", wide, env={"XDG_CACHE_HOME": str(cache), "COLUMNS": "400"})
+    assert proc.returncode == 0, proc.stderr
+    assert f"calibration {saved}, with N = 24 measured now" in proc.stdout, proc.stdout
+    widths = {r["width"] for r in json.loads(saved.read_text())["widths"]}
+    assert {2, 3, 4, 24} <= widths, widths
 
 
 def test_the_store_is_an_argument_like_everywhere_else(reference_store, tmp_path):
