@@ -370,7 +370,7 @@ class Driver:
             where = self.conn.dashboard or "not served (the scheduler has no HTTP server)"
             if self.conn.dashboard and importlib.util.find_spec("bokeh") is None:
                 # Dask serves its health routes without bokeh, but no pages
-                where += " (its pages need bokeh: pip install 'sweepctl[dashboard]')"
+                where += " (its pages need bokeh: pip install bokeh)"
             self.say({"kind": "log", "message": f"dashboard: {where}"})
         self.futures = as_completed(with_results=False)
 
