@@ -18,13 +18,15 @@ import llvmlite.binding as llvm_binding
 import numba
 import numpy as np
 from numba import types
-from scipy.linalg import cython_lapack
+from scipy.linalg import cython_blas, cython_lapack
+
+from sweepctl.kernel.schedule import ETA_MAX
 
 __all__ = ["reorthogonalise"]
 
 
-def _lapack_address(name: str) -> int:
-    capsule = cython_lapack.__pyx_capi__[name]
+def _lapack_address(name: str, module=cython_lapack) -> int:
+    capsule = module.__pyx_capi__[name]
     get_name = ctypes.pythonapi.PyCapsule_GetName
     get_name.restype = ctypes.c_char_p
     get_name.argtypes = [ctypes.py_object]
@@ -38,65 +40,148 @@ def _lapack_address(name: str) -> int:
 # are passed as addresses (Fortran passes everything by reference).
 llvm_binding.add_symbol("sweepctl_zgeqrf", _lapack_address("zgeqrf"))
 llvm_binding.add_symbol("sweepctl_zungqr", _lapack_address("zungqr"))
+llvm_binding.add_symbol("sweepctl_zpotrf", _lapack_address("zpotrf"))
+llvm_binding.add_symbol("sweepctl_zherk", _lapack_address("zherk", cython_blas))
+llvm_binding.add_symbol("sweepctl_ztrsm", _lapack_address("ztrsm", cython_blas))
 _zgeqrf = types.ExternalFunction("sweepctl_zgeqrf", types.void(*([types.intp] * 8)))
 _zungqr = types.ExternalFunction("sweepctl_zungqr", types.void(*([types.intp] * 9)))
+_zpotrf = types.ExternalFunction("sweepctl_zpotrf", types.void(*([types.intp] * 5)))
+_zherk = types.ExternalFunction("sweepctl_zherk", types.void(*([types.intp] * 10)))
+_ztrsm = types.ExternalFunction("sweepctl_ztrsm", types.void(*([types.intp] * 11)))
 
 _INT_BYTES = 4  # SciPy's LAPACK uses 32-bit integers (LP64)
 
 
 @numba.njit(cache=True, nogil=True, boundscheck=False)
-def _qr_batch(frame, logd, col_major, tau, work):  # pragma: no cover - compiled
+def _householder_strip(frame, s, logd, col_major, tau, work, ints):  # pragma: no cover
+    """Householder QR (``zgeqrf`` + ``zungqr``) of ``frame[s]``, in place."""
+    rows, cols = frame.shape[1], frame.shape[2]
+    p = ints.ctypes.data
+    a_ptr = col_major.ctypes.data
+    for j in range(cols):  # to column-major: col_major[j, i] = A[i, j]
+        for i in range(rows):
+            col_major[j, i] = frame[s, i, j]
+    ints[5] = 0
+    _zgeqrf(
+        p,
+        p + _INT_BYTES,
+        a_ptr,
+        p + 3 * _INT_BYTES,
+        tau.ctypes.data,
+        work.ctypes.data,
+        p + 4 * _INT_BYTES,
+        p + 5 * _INT_BYTES,
+    )
+    if ints[5] != 0:
+        return ints[5]
+    for i in range(cols):
+        logd[s, i] = np.log(np.abs(col_major[i, i]))
+    _zungqr(
+        p,
+        p + _INT_BYTES,
+        p + 2 * _INT_BYTES,
+        a_ptr,
+        p + 3 * _INT_BYTES,
+        tau.ctypes.data,
+        work.ctypes.data,
+        p + 4 * _INT_BYTES,
+        p + 5 * _INT_BYTES,
+    )
+    if ints[5] != 0:
+        return ints[5]
+    for i in range(rows):
+        for j in range(cols):
+            frame[s, i, j] = col_major[j, i]
+    return 0
+
+
+@numba.njit(cache=True, nogil=True, boundscheck=False)
+def _cholesky_strip(  # pragma: no cover - compiled
+    frame, s, logd, backup, gram, ints, chars, reals, one, accept
+):
+    """CholeskyQR of ``frame[s]`` with its orthogonality certificate; ``True`` if accepted.
+
+    The C-ordered ``2N × M`` frame ``A`` is, to Fortran, the ``M × 2N`` matrix ``B = A^T``,
+    so no transposed copy is made: ``B B^H = conj(A^H A)`` (``zherk``), whose Cholesky
+    factor is ``conj(R)`` (``zpotrf``; same real diagonal), and ``W^T = R^{-T} B =
+    conj(R)^{-H} B`` (``ztrsm``, left, conjugate transpose). A second ``zherk`` gives
+    ``conj(W^H W)``, whose entries have the moduli of ``W^H W``'s, for ``η``. Returns
+    ``False`` (``frame[s]`` restored from ``backup``) if Cholesky breaks down or
+    ``η > accept``.
+    """
+    cols = frame.shape[2]
+    p = ints.ctypes.data
+    c = chars.ctypes.data  # 'U', 'N', 'C', 'L'
+    r = reals.ctypes.data  # 1.0, 0.0
+    b_ptr = frame[s].ctypes.data
+    g_ptr = gram.ctypes.data
+    backup[:, :] = frame[s]
+    ldb = p + 6 * _INT_BYTES  # = cols; ints: rows, cols, cols, rows, lwork, info, cols
+    _zherk(c, c + 1, p + _INT_BYTES, p, r, b_ptr, ldb, r + 8, g_ptr, ldb)
+    ints[5] = 0
+    _zpotrf(c, p + _INT_BYTES, g_ptr, ldb, p + 5 * _INT_BYTES)
+    if ints[5] != 0:
+        return False
+    for i in range(cols):
+        logd[s, i] = np.log(gram[i, i].real)  # zpotrf: real and positive
+    _ztrsm(c + 3, c, c + 2, c + 1, p + _INT_BYTES, p, one.ctypes.data, g_ptr, ldb, b_ptr, ldb)
+    _zherk(c, c + 1, p + _INT_BYTES, p, r, b_ptr, ldb, r + 8, g_ptr, ldb)
+    # η = max_j Σ_i |Re| + |Im| of (W^H W − I)_ij, which bounds the 1-norm of that
+    # Hermitian matrix and so its 2-norm; read from the upper triangle, Fortran
+    # element (i, j) at gram[j, i]. NaN fails the test below.
+    eta = 0.0
+    for j in range(cols):
+        col_sum = 0.0
+        for i in range(j + 1):
+            v = gram[j, i]
+            col_sum += abs(v.real - (1.0 if i == j else 0.0)) + abs(v.imag)
+        for i in range(j + 1, cols):
+            v = gram[i, j]
+            col_sum += abs(v.real) + abs(v.imag)
+        if col_sum > eta or col_sum != col_sum:
+            eta = col_sum
+    if not eta <= accept:
+        frame[s] = backup
+        return False
+    return True
+
+
+@numba.njit(cache=True, nogil=True, boundscheck=False)
+def _qr_batch(
+    frame, logd, col_major, tau, work, gram, backup, cholesky, accept, fallbacks
+):  # pragma: no cover
     n_strips, rows, cols = frame.shape
-    ints = np.empty(6, dtype=np.int32)  # m, n, k, lda, lwork, info
+    ints = np.empty(7, dtype=np.int32)  # m, n, k, lda, lwork, info, ldg
     ints[0] = rows
     ints[1] = cols
     ints[2] = cols
     ints[3] = rows
     ints[4] = work.size
-    p = ints.ctypes.data
-    a_ptr = col_major.ctypes.data
+    ints[6] = cols
+    chars = np.empty(4, dtype=np.uint8)
+    chars[0] = 85  # U
+    chars[1] = 78  # N
+    chars[2] = 67  # C
+    chars[3] = 76  # L
+    reals = np.empty(2)
+    reals[0] = 1.0
+    reals[1] = 0.0
+    one = np.ones(1, dtype=np.complex128)
     for s in range(n_strips):
-        for j in range(cols):  # to column-major: col_major[j, i] = A[i, j]
-            for i in range(rows):
-                col_major[j, i] = frame[s, i, j]
-        ints[5] = 0
-        _zgeqrf(
-            p,
-            p + _INT_BYTES,
-            a_ptr,
-            p + 3 * _INT_BYTES,
-            tau.ctypes.data,
-            work.ctypes.data,
-            p + 4 * _INT_BYTES,
-            p + 5 * _INT_BYTES,
-        )
-        if ints[5] != 0:
-            return ints[5]
-        for i in range(cols):
-            logd[s, i] = np.log(np.abs(col_major[i, i]))
-        _zungqr(
-            p,
-            p + _INT_BYTES,
-            p + 2 * _INT_BYTES,
-            a_ptr,
-            p + 3 * _INT_BYTES,
-            tau.ctypes.data,
-            work.ctypes.data,
-            p + 4 * _INT_BYTES,
-            p + 5 * _INT_BYTES,
-        )
-        if ints[5] != 0:
-            return ints[5]
-        for i in range(rows):
-            for j in range(cols):
-                frame[s, i, j] = col_major[j, i]
+        if cholesky:
+            if _cholesky_strip(frame, s, logd, backup, gram, ints, chars, reals, one, accept):
+                continue
+            fallbacks[0] += 1
+        info = _householder_strip(frame, s, logd, col_major, tau, work, ints)
+        if info != 0:
+            return info
     return 0
 
 
 _local = threading.local()
 
 
-def _workspace(rows: int, cols: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _workspace(rows: int, cols: int) -> tuple[np.ndarray, ...]:
     """Per-thread scratch arrays, reused: fresh ones each call are slow under Dask's
     low ``MALLOC_TRIM_THRESHOLD_``."""
     cache = getattr(_local, "cache", None)
@@ -113,23 +198,57 @@ def _workspace(rows: int, cols: int) -> tuple[np.ndarray, np.ndarray, np.ndarray
             np.empty((cols, rows), dtype=np.complex128),
             np.empty(cols, dtype=np.complex128),
             np.empty(lwork, dtype=np.complex128),
+            np.zeros((cols, cols), dtype=np.complex128),
+            np.empty((rows, cols), dtype=np.complex128),
         )
     return cache[key]
 
 
-def reorthogonalise(frame: np.ndarray) -> np.ndarray:
-    """Replace each frame by the ``Q`` of its Householder QR, in place.
+def _accept_threshold(rows: int, cols: int) -> float:
+    """:data:`ETA_MAX` less the rounding of the computed ``W^H W`` (derived: each entry
+    is a length-``rows`` dot product of columns of norm ≤ √(1 + η), error ≤
+    γ_rows (1 + η); a column of ``cols`` entries sums ``cols`` of them)."""
+    u = np.finfo(np.float64).eps / 2
+    gamma = rows * u / (1.0 - rows * u)
+    return ETA_MAX - cols * gamma * (1.0 + ETA_MAX)
+
+
+def reorthogonalise(
+    frame: np.ndarray, *, cholesky: bool = False, fallbacks: np.ndarray | None = None
+) -> np.ndarray:
+    """Replace each frame by the ``Q`` of a QR factorisation, in place.
 
     Parameters
     ----------
     frame
         complex128 ``(S, m, n)``, ``m >= n``, C-contiguous.
+    cholesky
+        ``False``: Householder QR (``zgeqrf`` + ``zungqr``), ``Q`` orthonormal to
+        rounding. ``True``: CholeskyQR [1]_ with an a-posteriori certificate: ``G = A^H
+        A``, ``R = chol(G)``, ``W = A R^{-1}``, then an upper bound ``η`` of ``||W^H W −
+        I||_1`` (sum of ``|Re| + |Im|``). A strip is accepted only if the Cholesky
+        factorisation succeeded and ``η ≤ ETA_MAX`` less the rounding of that check;
+        otherwise it is redone by Householder from the untouched input. The decision
+        depends on the frame's values only (deterministic, independent of timing and
+        of the batch). ``W`` is orthonormal only up to ``η``: ``cond(W) ≤ √((1+η)/(1−η))``
+        (``schedule.ORTHO_RESERVE`` in the log), counted in the next interval's bound.
+        ``W R = A + E`` with ``||E||_F ≤ γ_n n √(1+η) ||A||_2`` (derived: row-wise
+        backward error of the triangular solve), so the product of the ``R`` factors
+        telescopes as for Householder: ``W``'s triangular defect cancels in the next
+        factorisation (engine module docstring).
+    fallbacks
+        Optional int64 array of one element, incremented per strip that fell back.
 
     Returns
     -------
     numpy.ndarray
         ``log|R_ii|``, shape ``(S, n)``. LAPACK does not make ``R``'s diagonal
-        positive, hence the modulus (numpy.linalg.qr documentation).
+        positive, hence the modulus ([M4] tests/REFERENCES.md); Cholesky's is positive.
+
+    References
+    ----------
+    .. [1] [M8] tests/REFERENCES.md (CholeskyQR; Yamamoto et al. 2015, Fukaya et al.
+       2020).
     """
     if frame.dtype != np.complex128 or not frame.flags.c_contiguous or frame.ndim != 3:
         raise ValueError("frame must be a C-contiguous complex128 array (S, m, n)")
@@ -137,8 +256,11 @@ def reorthogonalise(frame: np.ndarray) -> np.ndarray:
     if rows < cols:
         raise ValueError(f"frame has fewer rows ({rows}) than columns ({cols})")
     logd = np.empty((n_strips, cols))
-    col_major, tau, work = _workspace(rows, cols)
-    info = _qr_batch(frame, logd, col_major, tau, work)
+    col_major, tau, work, gram, backup = _workspace(rows, cols)
+    if fallbacks is None:
+        fallbacks = np.zeros(1, dtype=np.int64)
+    accept = _accept_threshold(rows, cols)
+    info = _qr_batch(frame, logd, col_major, tau, work, gram, backup, cholesky, accept, fallbacks)
     if info != 0:  # pragma: no cover - LAPACK argument error
         raise RuntimeError(f"LAPACK QR failed with info={info}")
     return logd

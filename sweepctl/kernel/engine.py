@@ -38,7 +38,7 @@ from sweepctl import __version__
 from sweepctl.kernel._loops import apply_columns, column_bounds, unit_phases
 from sweepctl.kernel._qr import reorthogonalise
 from sweepctl.kernel.network import NetworkModel, default_warmup, draw_layers
-from sweepctl.kernel.schedule import GROWTH_SCALE, LOG_COND_BUDGET, growth_units
+from sweepctl.kernel.schedule import GROWTH_SCALE, LOG_COND_BUDGET, budget_units, growth_units
 
 __all__ = [
     "LOG_COND_BUDGET",
@@ -53,7 +53,7 @@ __all__ = [
 
 #: Growth bounds are summed as integers in units of 2**-24 (exact, associative).
 _GROWTH_SCALE = GROWTH_SCALE
-_STATE_FORMAT = 1
+_STATE_FORMAT = 2  # 2: CholeskyQR frames, budget net of the orthogonality reserve
 #: Target number of uniform variates drawn per chunk (a few MB of memory).
 _CHUNK_VARIATES = 400_000
 
@@ -134,9 +134,16 @@ class StripState:
     layers_done: int
     growth_since_qr: int
     rng: np.random.Generator = field(repr=False)
-    budget: int = int(LOG_COND_BUDGET * _GROWTH_SCALE)
+    budget: int = field(default_factory=budget_units)
+    #: scheduled QRs by certified CholeskyQR (``False``: Householder only; tests compare)
+    cholesky: bool = True
     #: QRs done by this object (a diagnostic for benchmarks; not persisted).
     reorthogonalisations: int = 0
+    #: strip-QRs where the CholeskyQR certificate failed and Householder redid it
+    #: (diagnostic, not persisted)
+    fallbacks: np.ndarray = field(
+        default_factory=lambda: np.zeros(1, dtype=np.int64), repr=False, compare=False
+    )
     _work: dict | None = field(default=None, repr=False, compare=False)
 
     # -- construction -----------------------------------------------------------------
@@ -150,6 +157,7 @@ class StripState:
         warmup: int | None = None,
         full: bool = False,
         log_cond_budget: float = LOG_COND_BUDGET,
+        cholesky: bool = True,
     ) -> StripState:
         """A fresh batch of ``strips`` strips with random initial frames.
 
@@ -166,8 +174,11 @@ class StripState:
         full
             Track all ``2N`` exponents instead of the positive ``N``.
         log_cond_budget
-            Re-orthogonalisation threshold (log of the condition-number bound);
-            only tests change it.
+            Re-orthogonalisation threshold (log of the condition-number bound, the
+            orthogonality reserve included); only tests change it.
+        cholesky
+            Scheduled QRs by certified CholeskyQR with Householder fallback (default)
+            or by Householder only (a reference for tests).
         """
         if isinstance(strips, bool) or not isinstance(strips, (int, np.integer)) or strips < 1:
             raise ValueError(f"strips must be an integer >= 1, got {strips!r}")
@@ -192,7 +203,8 @@ class StripState:
             layers_done=0,
             growth_since_qr=0,
             rng=rng,
-            budget=int(log_cond_budget * _GROWTH_SCALE),
+            budget=budget_units(log_cond_budget),
+            cholesky=bool(cholesky),
         )
 
     # -- evolution --------------------------------------------------------------------
@@ -205,8 +217,9 @@ class StripState:
         per_layer = self.strips * max(self.model.draws_per_layer, 2 * self.model.width)
         return int(min(4096, max(8, _CHUNK_VARIATES // per_layer)))
 
-    def _qr(self, measuring: bool) -> None:
-        logd = reorthogonalise(self.frame)
+    def _qr(self, measuring: bool, householder: bool = False) -> None:
+        chol = self.cholesky and not householder
+        logd = reorthogonalise(self.frame, cholesky=chol, fallbacks=self.fallbacks)
         self.reorthogonalisations += 1
         if measuring:
             self.log_sum += logd
@@ -238,8 +251,10 @@ class StripState:
             self.layers_done += k
             remaining -= k
             if self.layers_done == self.warmup and self.warmup > 0:
-                # Warm-up ends: start accumulating from an orthonormal frame.
-                self._qr(measuring=False)
+                # Warm-up ends: start accumulating from an orthonormal frame
+                # (Householder: a CholeskyQR frame's triangular defect would not be
+                # telescoped by an accumulated R here).
+                self._qr(measuring=False, householder=True)
         return self
 
     def _buffers(self) -> dict:
@@ -316,6 +331,7 @@ class StripState:
             "layers_done": self.layers_done,
             "growth_since_qr": self.growth_since_qr,
             "budget": self.budget,
+            "cholesky": self.cholesky,
             "bit_generator": self.rng.bit_generator.state,
         }
         buf = io.BytesIO()
@@ -364,6 +380,7 @@ class StripState:
                 growth_since_qr=int(meta["growth_since_qr"]),
                 rng=np.random.Generator(bitgen),
                 budget=int(meta["budget"]),
+                cholesky=bool(meta["cholesky"]),
             )
 
 
