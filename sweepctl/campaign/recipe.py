@@ -10,7 +10,7 @@ A recipe is a TOML file::
     widths = [4, 8, 16]
     couplings = { start = -0.3, stop = 0.3, num = 7 }     # or a list of numbers
     disorder = [ { p = 0.0 }, { p_block = 0.1, p_open = 0.1 } ]
-    epsilon = [1e-6]                # at least 9.42e-7 (see smallest_safe_epsilon)
+    epsilon = [1e-6]                # at least 9.57e-7 (see smallest_safe_epsilon)
 
     [precision]
     target = 0.01              # relative standard error of Γ per point (a floor with [goal])
@@ -167,7 +167,7 @@ def _toml(v: Any) -> str:
 
 
 def format_float(v: float) -> str:
-    """Shortest decimal of ``v``, exponent without padding (``9.42e-7``, not ``9.42e-07``)."""
+    """Shortest decimal of ``v``, exponent without padding (``9.57e-7``, not ``9.57e-07``)."""
     text = repr(float(v))
     if "e" in text:
         mant, exp = text.split("e")
