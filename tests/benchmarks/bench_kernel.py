@@ -62,9 +62,9 @@ def gamma_of(exponents: np.ndarray, n: int) -> tuple[float, float]:
     return float(g.mean()), float(g.std(ddof=1) / math.sqrt(g.size))
 
 
-def run_kernel(n: int, p: float, layers: int, seed: int):
+def run_kernel(n: int, p: float, layers: int, seed: int, cholesky: bool = True):
     model = NetworkModel(n, 0.0, p, p, EPS)
-    st = StripState.start(model, strips=STRIPS, seed=seed, warmup=0)
+    st = StripState.start(model, strips=STRIPS, seed=seed, warmup=0, cholesky=cholesky)
     t0 = time.process_time()
     st.advance(layers)
     res = st.result()
@@ -86,6 +86,11 @@ def main() -> None:
     ap.add_argument("--layers-scale", type=float, default=1.0)
     ap.add_argument("--repeats", type=int, default=3, help="interleaved runs of each (median)")
     ap.add_argument("--only", default="", help="comma-separated case indices (default all)")
+    ap.add_argument(
+        "--householder",
+        action="store_true",
+        help="kernel with Householder QRs only (the method before CholeskyQR; for comparison)",
+    )
     args = ap.parse_args()
     StripState.start(NetworkModel(4, 0.0, 0.3, 0.3), strips=2, warmup=0).advance(4).result()
     cases = CASES
@@ -94,6 +99,7 @@ def main() -> None:
     print(
         f"{STRIPS} strips, x = 0, no warm-up, one BLAS thread, ε = {EPS:g}, "
         f"median of {args.repeats} interleaved runs, process CPU seconds"
+        + (", kernel with Householder QRs only" if args.householder else "")
     )
     print(
         f"{'case':>6} {'N':>4} {'layers':>7} {'kernel s':>9} {'peer s':>8} {'ratio':>7}"
@@ -104,7 +110,7 @@ def main() -> None:
         layers = max(8, int(layers * args.layers_scale))
         tk, tp = [], []
         for rep in range(args.repeats):
-            dt, ek, qk, fb = run_kernel(n, p, layers, seed=1 + rep)
+            dt, ek, qk, fb = run_kernel(n, p, layers, 1 + rep, not args.householder)
             tk.append(dt)
             dt, ep, qp = run_peer(n, p, layers, seed=101 + rep)
             tp.append(dt)
