@@ -97,7 +97,7 @@ def _householder_strip(frame, s, logd, col_major, tau, work, ints):  # pragma: n
 
 @numba.njit(cache=True, nogil=True, boundscheck=False)
 def _cholesky_strip(  # pragma: no cover - compiled
-    frame, s, logd, backup, gram, ints, chars, reals, one, accept
+    frame, s, logd, backup, gram, sums, ints, chars, reals, one, accept, read_out
 ):
     """CholeskyQR of ``frame[s]`` with its orthogonality certificate; ``True`` if accepted.
 
@@ -127,28 +127,43 @@ def _cholesky_strip(  # pragma: no cover - compiled
     _ztrsm(c + 3, c, c + 2, c + 1, p + _INT_BYTES, p, one.ctypes.data, g_ptr, ldb, b_ptr, ldb)
     _zherk(c, c + 1, p + _INT_BYTES, p, r, b_ptr, ldb, r + 8, g_ptr, ldb)
     # η = max_j Σ_i |Re| + |Im| of (W^H W − I)_ij, which bounds the 1-norm of that
-    # Hermitian matrix and so its 2-norm; read from the upper triangle, Fortran
-    # element (i, j) at gram[j, i]. NaN fails the test below.
+    # Hermitian matrix and so its 2-norm. The upper triangle is stored, Fortran element
+    # (i, j), i ≤ j, at gram[j, i]: read row by row, each off-diagonal entry counts for
+    # columns i and j. NaN fails the test below.
+    for j in range(cols):
+        sums[j] = 0.0
+    for j in range(cols):
+        row = gram[j]
+        acc = abs(row[j].real - 1.0) + abs(row[j].imag)
+        for i in range(j):
+            v = abs(row[i].real) + abs(row[i].imag)
+            acc += v
+            sums[i] += v
+        sums[j] += acc
     eta = 0.0
     for j in range(cols):
-        col_sum = 0.0
-        for i in range(j + 1):
-            v = gram[j, i]
-            col_sum += abs(v.real - (1.0 if i == j else 0.0)) + abs(v.imag)
-        for i in range(j + 1, cols):
-            v = gram[i, j]
-            col_sum += abs(v.real) + abs(v.imag)
-        if col_sum > eta or col_sum != col_sum:
-            eta = col_sum
+        v = sums[j]
+        if v > eta or v != v:
+            eta = v
     if not eta <= accept:
         frame[s] = backup
         return False
+    if read_out:
+        # The read-out needs the R of A itself: A = W R, W = Q S with S = chol(W^H W),
+        # so diag R_A = diag S · diag R (gram holds conj(W^H W); same real diagonal).
+        ints[5] = 0
+        _zpotrf(c, p + _INT_BYTES, g_ptr, ldb, p + 5 * _INT_BYTES)
+        if ints[5] != 0:
+            frame[s] = backup
+            return False
+        for i in range(cols):
+            logd[s, i] += np.log(gram[i, i].real)
     return True
 
 
 @numba.njit(cache=True, nogil=True, boundscheck=False)
 def _qr_batch(
-    frame, logd, col_major, tau, work, gram, backup, cholesky, accept, fallbacks
+    frame, logd, col_major, tau, work, gram, backup, cholesky, accept, fallbacks, read_out
 ):  # pragma: no cover
     n_strips, rows, cols = frame.shape
     ints = np.empty(7, dtype=np.int32)  # m, n, k, lda, lwork, info, ldg
@@ -167,9 +182,12 @@ def _qr_batch(
     reals[0] = 1.0
     reals[1] = 0.0
     one = np.ones(1, dtype=np.complex128)
+    sums = np.empty(cols)
     for s in range(n_strips):
         if cholesky:
-            if _cholesky_strip(frame, s, logd, backup, gram, ints, chars, reals, one, accept):
+            if _cholesky_strip(
+                frame, s, logd, backup, gram, sums, ints, chars, reals, one, accept, read_out
+            ):
                 continue
             fallbacks[0] += 1
         info = _householder_strip(frame, s, logd, col_major, tau, work, ints)
@@ -214,7 +232,11 @@ def _accept_threshold(rows: int, cols: int) -> float:
 
 
 def reorthogonalise(
-    frame: np.ndarray, *, cholesky: bool = False, fallbacks: np.ndarray | None = None
+    frame: np.ndarray,
+    *,
+    cholesky: bool = False,
+    fallbacks: np.ndarray | None = None,
+    read_out: bool = False,
 ) -> np.ndarray:
     """Replace each frame by the ``Q`` of a QR factorisation, in place.
 
@@ -238,6 +260,12 @@ def reorthogonalise(
         factorisation (engine module docstring).
     fallbacks
         Optional int64 array of one element, incremented per strip that fell back.
+    read_out
+        With ``cholesky``: return the diagonal of ``A``'s own ``R`` (as Householder
+        would), not of the CholeskyQR factor whose defect the next factorisation
+        telescopes: ``W = Q S`` with ``S = chol(W^H W)`` from the certificate's Gram
+        matrix (one more ``zpotrf``), and ``log|R_ii| + log S_ii`` is returned. For a
+        read-out, after which no factorisation follows.
 
     Returns
     -------
@@ -260,7 +288,9 @@ def reorthogonalise(
     if fallbacks is None:
         fallbacks = np.zeros(1, dtype=np.int64)
     accept = _accept_threshold(rows, cols)
-    info = _qr_batch(frame, logd, col_major, tau, work, gram, backup, cholesky, accept, fallbacks)
+    info = _qr_batch(
+        frame, logd, col_major, tau, work, gram, backup, cholesky, accept, fallbacks, read_out
+    )
     if info != 0:  # pragma: no cover - LAPACK argument error
         raise RuntimeError(f"LAPACK QR failed with info={info}")
     return logd

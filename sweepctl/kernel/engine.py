@@ -33,11 +33,12 @@ independent of chunking). The guarantee is the same as with Householder througho
 * Non-orthonormal frames. ``W = Q_W S`` with ``S`` upper triangular, ``diag S = 1 +
   O(η)``. The engine accumulates ``diag R`` instead of ``diag (S R)``; the next
   factorisation of ``T W = T Q_W S`` returns ``R' = R_true' S`` whose diagonal carries
-  ``diag S`` back, so ``Σ log R_ii`` telescopes to the exact accumulation, and the
-  read-out's Householder QR of the current frame adds the last ``S``. What remains of
-  ``η`` is the frame's condition ``√((1+η)/(1−η))`` entering the next interval, which
-  the schedule reserves. The warm-up's last QR (whose ``R`` is discarded) and the
-  read-out use Householder, so no ``S`` is dropped.
+  ``diag S`` back, so ``Σ log R_ii`` telescopes to the exact accumulation. The read-out,
+  after which nothing telescopes, adds the last ``S`` explicitly (``S = chol(W^H W)``
+  from the certificate's Gram matrix, ``reorthogonalise(..., read_out=True)``). What
+  remains of ``η`` is the frame's condition ``√((1+η)/(1−η))`` entering the next
+  interval, which the schedule reserves. The warm-up's last QR (whose ``R`` is
+  discarded) uses Householder, so no ``S`` is dropped there.
 
 With ``κ ≈ 4e6`` after a blocking column at ``ε = 1e-6`` (measured, N = 16 and 64),
 ``u κ² ≈ 1e-3`` and the certificate passes with ``η ≈ 1e-3`` (fallback on 0.01–0.3 %
@@ -329,7 +330,7 @@ class StripState:
                 f"no measured layers yet (warm-up is {self.warmup} layers, "
                 f"{self.layers_done} done); advance further before reading exponents"
             )
-        logd = reorthogonalise(self.frame.copy())
+        logd = reorthogonalise(self.frame.copy(), cholesky=self.cholesky, read_out=True)
         exps = (self.log_sum + logd) / n_meas
         w = self.model.neg_log_t_table()
         sum_rule = np.einsum("shk,hk->s", self.node_counts, w) / n_meas
