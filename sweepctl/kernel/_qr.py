@@ -20,9 +20,10 @@ import numpy as np
 from numba import types
 from scipy.linalg import cython_blas, cython_lapack
 
+from sweepctl.kernel._loops import apply_columns
 from sweepctl.kernel.schedule import ETA_MAX
 
-__all__ = ["reorthogonalise"]
+__all__ = ["advance_scheduled", "reorthogonalise"]
 
 
 def _lapack_address(name: str, module=cython_lapack) -> int:
@@ -294,3 +295,122 @@ def reorthogonalise(
     if info != 0:  # pragma: no cover - LAPACK argument error
         raise RuntimeError(f"LAPACK QR failed with info={info}")
     return logd
+
+
+@numba.njit(cache=True, nogil=True, boundscheck=False)
+def _advance_scheduled(  # pragma: no cover - compiled
+    frame,
+    kinds,
+    pcos,
+    psin,
+    table,
+    bounds,
+    rows,
+    growth,
+    budget,
+    log_sum,
+    measuring,
+    logd,
+    col_major,
+    tau,
+    work,
+    gram,
+    backup,
+    cholesky,
+    accept,
+    fallbacks,
+):
+    """Apply a chunk's columns with the re-orthogonalisation schedule, all in compiled code.
+
+    The rule (mirrored by ``schedule._count``): before a column whose bound would take the
+    accumulated growth above ``budget``, do a QR if anything was applied since the last
+    one; a single column above the budget is applied alone. Columns between QRs are
+    applied as one range (per strip the same arithmetic as one at a time). Returns
+    ``(growth, QRs done)``; a negative QR count is a LAPACK error code.
+    """
+    view = frame.view(np.float64)
+    n_cols = bounds.size
+    qrs = 0
+    col = 0
+    while col < n_cols:
+        end = col
+        acc = growth
+        while end < n_cols and acc + bounds[end] <= budget:
+            acc += bounds[end]
+            end += 1
+        if end == col:
+            if growth > 0:
+                info = _qr_batch(
+                    frame,
+                    logd,
+                    col_major,
+                    tau,
+                    work,
+                    gram,
+                    backup,
+                    cholesky,
+                    accept,
+                    fallbacks,
+                    False,
+                )
+                if info != 0:
+                    return growth, -abs(info)
+                qrs += 1
+                if measuring:
+                    for s in range(log_sum.shape[0]):
+                        for i in range(log_sum.shape[1]):
+                            log_sum[s, i] += logd[s, i]
+                growth = 0
+                continue
+            end = col + 1
+            acc = growth + bounds[col]
+        apply_columns(view, kinds, pcos, psin, table, col, end, rows)
+        growth = acc
+        col = end
+    return growth, qrs
+
+
+def advance_scheduled(
+    frame,
+    kinds,
+    pcos,
+    psin,
+    table,
+    bounds,
+    rows,
+    growth,
+    budget,
+    log_sum,
+    measuring,
+    cholesky,
+    fallbacks,
+) -> tuple[int, int]:
+    """Python entry to :func:`_advance_scheduled` with this thread's QR workspace."""
+    n_strips, n_rows, cols = frame.shape
+    col_major, tau, work, gram, backup = _workspace(n_rows, cols)
+    logd = np.empty((n_strips, cols))
+    growth, qrs = _advance_scheduled(
+        frame,
+        kinds,
+        pcos,
+        psin,
+        table,
+        bounds,
+        rows,
+        int(growth),
+        int(budget),
+        log_sum,
+        bool(measuring),
+        logd,
+        col_major,
+        tau,
+        work,
+        gram,
+        backup,
+        bool(cholesky),
+        _accept_threshold(n_rows, cols),
+        fallbacks,
+    )
+    if qrs < 0:  # pragma: no cover - LAPACK argument error
+        raise RuntimeError(f"LAPACK QR failed with info={-qrs}")
+    return int(growth), int(qrs)
