@@ -10,7 +10,7 @@ A recipe is a TOML file::
     widths = [4, 8, 16]
     couplings = { start = -0.3, stop = 0.3, num = 7 }     # or a list of numbers
     disorder = [ { p = 0.0 }, { p_block = 0.1, p_open = 0.1 } ]
-    epsilon = [1e-6]                # at least 9.42e-7 (see smallest_safe_epsilon)
+    epsilon = [1e-6]                # at least 9.57e-7 (see smallest_safe_epsilon)
 
     [precision]
     target = 0.01              # relative standard error of Γ per point (a floor with [goal])
@@ -168,7 +168,7 @@ def _toml(v: Any) -> str:
 
 
 def format_float(v: float) -> str:
-    """Shortest decimal of ``v``, exponent without padding (``9.42e-7``, not ``9.42e-07``)."""
+    """Shortest decimal of ``v``, exponent without padding (``9.57e-7``, not ``9.57e-07``)."""
     text = repr(float(v))
     if "e" in text:
         mant, exp = text.split("e")
@@ -181,13 +181,14 @@ def smallest_safe_epsilon() -> float:
 
     A blocking node's block has ``cosh θ = 1/ε``, so one column of them grows the
     frame's condition number by ``e^{2θ}`` (≈ 4/ε²). The engine re-orthogonalises
-    before the bound exceeds ``e^B`` with ``B = ln(1e-3/eps)`` (tests/REFERENCES.md
-    [M2]); a single column above it would be applied alone, uncovered. Covered iff
-    ``2 arccosh(1/ε) ≤ B`` ⇔ ``ε ≥ 1/cosh(B/2)`` ≈ 9.42e-7.
+    before the columns' bound exceeds ``e^B`` with ``B = ln(1e-3/eps) − ORTHO_RESERVE``
+    (tests/REFERENCES.md [M2]; the reserve, 0.031, covers a CholeskyQR frame's defect);
+    a single column above it would be applied alone, uncovered. Covered iff
+    ``2 arccosh(1/ε) ≤ B`` ⇔ ``ε ≥ 1/cosh(B/2)`` ≈ 9.57e-7.
     """
-    from sweepctl.kernel.schedule import LOG_COND_BUDGET
+    from sweepctl.kernel.schedule import COLUMN_BUDGET
 
-    return 1.0 / math.cosh(LOG_COND_BUDGET / 2.0)
+    return 1.0 / math.cosh(COLUMN_BUDGET / 2.0)
 
 
 def canonical_float(v: float) -> float:

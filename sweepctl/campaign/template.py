@@ -41,7 +41,7 @@ couplings = {{ start = -0.2, stop = 0.2, num = 9 }}
 # Default [{{ p = 0.0 }}] (clean network); {{ p = ... }} sets both; p_block + p_open <= 1.
 # Values may be added later.
 disorder = [{{ p = 0.0 }}]
-# Transmission of a blocking node. Default [1e-6]; 9.42e-7 <= epsilon <= 0.1 (below
+# Transmission of a blocking node. Default [1e-6]; 9.57e-7 <= epsilon <= 0.1 (below
 # that the kernel's accuracy is not proven). Values may be added later.
 epsilon = [1e-6]
 

@@ -18,13 +18,16 @@ import llvmlite.binding as llvm_binding
 import numba
 import numpy as np
 from numba import types
-from scipy.linalg import cython_lapack
+from scipy.linalg import cython_blas, cython_lapack
 
-__all__ = ["reorthogonalise"]
+from sweepctl.kernel._loops import apply_columns
+from sweepctl.kernel.schedule import ETA_MAX
+
+__all__ = ["advance_scheduled", "reorthogonalise"]
 
 
-def _lapack_address(name: str) -> int:
-    capsule = cython_lapack.__pyx_capi__[name]
+def _lapack_address(name: str, module=cython_lapack) -> int:
+    capsule = module.__pyx_capi__[name]
     get_name = ctypes.pythonapi.PyCapsule_GetName
     get_name.restype = ctypes.c_char_p
     get_name.argtypes = [ctypes.py_object]
@@ -38,65 +41,166 @@ def _lapack_address(name: str) -> int:
 # are passed as addresses (Fortran passes everything by reference).
 llvm_binding.add_symbol("sweepctl_zgeqrf", _lapack_address("zgeqrf"))
 llvm_binding.add_symbol("sweepctl_zungqr", _lapack_address("zungqr"))
+llvm_binding.add_symbol("sweepctl_zpotrf", _lapack_address("zpotrf"))
+llvm_binding.add_symbol("sweepctl_zherk", _lapack_address("zherk", cython_blas))
+llvm_binding.add_symbol("sweepctl_ztrsm", _lapack_address("ztrsm", cython_blas))
 _zgeqrf = types.ExternalFunction("sweepctl_zgeqrf", types.void(*([types.intp] * 8)))
 _zungqr = types.ExternalFunction("sweepctl_zungqr", types.void(*([types.intp] * 9)))
+_zpotrf = types.ExternalFunction("sweepctl_zpotrf", types.void(*([types.intp] * 5)))
+_zherk = types.ExternalFunction("sweepctl_zherk", types.void(*([types.intp] * 10)))
+_ztrsm = types.ExternalFunction("sweepctl_ztrsm", types.void(*([types.intp] * 11)))
 
 _INT_BYTES = 4  # SciPy's LAPACK uses 32-bit integers (LP64)
 
 
 @numba.njit(cache=True, nogil=True, boundscheck=False)
-def _qr_batch(frame, logd, col_major, tau, work):  # pragma: no cover - compiled
+def _householder_strip(frame, s, logd, col_major, tau, work, ints):  # pragma: no cover
+    """Householder QR (``zgeqrf`` + ``zungqr``) of ``frame[s]``, in place."""
+    rows, cols = frame.shape[1], frame.shape[2]
+    p = ints.ctypes.data
+    a_ptr = col_major.ctypes.data
+    for j in range(cols):  # to column-major: col_major[j, i] = A[i, j]
+        for i in range(rows):
+            col_major[j, i] = frame[s, i, j]
+    ints[5] = 0
+    _zgeqrf(
+        p,
+        p + _INT_BYTES,
+        a_ptr,
+        p + 3 * _INT_BYTES,
+        tau.ctypes.data,
+        work.ctypes.data,
+        p + 4 * _INT_BYTES,
+        p + 5 * _INT_BYTES,
+    )
+    if ints[5] != 0:
+        return ints[5]
+    for i in range(cols):
+        logd[s, i] = np.log(np.abs(col_major[i, i]))
+    _zungqr(
+        p,
+        p + _INT_BYTES,
+        p + 2 * _INT_BYTES,
+        a_ptr,
+        p + 3 * _INT_BYTES,
+        tau.ctypes.data,
+        work.ctypes.data,
+        p + 4 * _INT_BYTES,
+        p + 5 * _INT_BYTES,
+    )
+    if ints[5] != 0:
+        return ints[5]
+    for i in range(rows):
+        for j in range(cols):
+            frame[s, i, j] = col_major[j, i]
+    return 0
+
+
+@numba.njit(cache=True, nogil=True, boundscheck=False)
+def _cholesky_strip(  # pragma: no cover - compiled
+    frame, s, logd, backup, gram, sums, ints, chars, reals, one, accept, read_out
+):
+    """CholeskyQR of ``frame[s]`` with its orthogonality certificate; ``True`` if accepted.
+
+    The C-ordered ``2N × M`` frame ``A`` is, to Fortran, the ``M × 2N`` matrix ``B = A^T``,
+    so no transposed copy is made: ``B B^H = conj(A^H A)`` (``zherk``), whose Cholesky
+    factor is ``conj(R)`` (``zpotrf``; same real diagonal), and ``W^T = R^{-T} B =
+    conj(R)^{-H} B`` (``ztrsm``, left, conjugate transpose). A second ``zherk`` gives
+    ``conj(W^H W)``, whose entries have the moduli of ``W^H W``'s, for ``η``. Returns
+    ``False`` (``frame[s]`` restored from ``backup``) if Cholesky breaks down or
+    ``η > accept``.
+    """
+    cols = frame.shape[2]
+    p = ints.ctypes.data
+    c = chars.ctypes.data  # 'U', 'N', 'C', 'L'
+    r = reals.ctypes.data  # 1.0, 0.0
+    b_ptr = frame[s].ctypes.data
+    g_ptr = gram.ctypes.data
+    backup[:, :] = frame[s]
+    ldb = p + 6 * _INT_BYTES  # = cols; ints: rows, cols, cols, rows, lwork, info, cols
+    _zherk(c, c + 1, p + _INT_BYTES, p, r, b_ptr, ldb, r + 8, g_ptr, ldb)
+    ints[5] = 0
+    _zpotrf(c, p + _INT_BYTES, g_ptr, ldb, p + 5 * _INT_BYTES)
+    if ints[5] != 0:
+        return False
+    for i in range(cols):
+        logd[s, i] = np.log(gram[i, i].real)  # zpotrf: real and positive
+    _ztrsm(c + 3, c, c + 2, c + 1, p + _INT_BYTES, p, one.ctypes.data, g_ptr, ldb, b_ptr, ldb)
+    _zherk(c, c + 1, p + _INT_BYTES, p, r, b_ptr, ldb, r + 8, g_ptr, ldb)
+    # η = max_j Σ_i |Re| + |Im| of (W^H W − I)_ij, which bounds the 1-norm of that
+    # Hermitian matrix and so its 2-norm. The upper triangle is stored, Fortran element
+    # (i, j), i ≤ j, at gram[j, i]: read row by row, each off-diagonal entry counts for
+    # columns i and j. NaN fails the test below.
+    for j in range(cols):
+        sums[j] = 0.0
+    for j in range(cols):
+        row = gram[j]
+        acc = abs(row[j].real - 1.0) + abs(row[j].imag)
+        for i in range(j):
+            v = abs(row[i].real) + abs(row[i].imag)
+            acc += v
+            sums[i] += v
+        sums[j] += acc
+    eta = 0.0
+    for j in range(cols):
+        v = sums[j]
+        if v > eta or v != v:
+            eta = v
+    if not eta <= accept:
+        frame[s] = backup
+        return False
+    if read_out:
+        # The read-out needs the R of A itself: A = W R, W = Q S with S = chol(W^H W),
+        # so diag R_A = diag S · diag R (gram holds conj(W^H W); same real diagonal).
+        ints[5] = 0
+        _zpotrf(c, p + _INT_BYTES, g_ptr, ldb, p + 5 * _INT_BYTES)
+        if ints[5] != 0:
+            frame[s] = backup
+            return False
+        for i in range(cols):
+            logd[s, i] += np.log(gram[i, i].real)
+    return True
+
+
+@numba.njit(cache=True, nogil=True, boundscheck=False)
+def _qr_batch(
+    frame, logd, col_major, tau, work, gram, backup, cholesky, accept, fallbacks, read_out
+):  # pragma: no cover
     n_strips, rows, cols = frame.shape
-    ints = np.empty(6, dtype=np.int32)  # m, n, k, lda, lwork, info
+    ints = np.empty(7, dtype=np.int32)  # m, n, k, lda, lwork, info, ldg
     ints[0] = rows
     ints[1] = cols
     ints[2] = cols
     ints[3] = rows
     ints[4] = work.size
-    p = ints.ctypes.data
-    a_ptr = col_major.ctypes.data
+    ints[6] = cols
+    chars = np.empty(4, dtype=np.uint8)
+    chars[0] = 85  # U
+    chars[1] = 78  # N
+    chars[2] = 67  # C
+    chars[3] = 76  # L
+    reals = np.empty(2)
+    reals[0] = 1.0
+    reals[1] = 0.0
+    one = np.ones(1, dtype=np.complex128)
+    sums = np.empty(cols)
     for s in range(n_strips):
-        for j in range(cols):  # to column-major: col_major[j, i] = A[i, j]
-            for i in range(rows):
-                col_major[j, i] = frame[s, i, j]
-        ints[5] = 0
-        _zgeqrf(
-            p,
-            p + _INT_BYTES,
-            a_ptr,
-            p + 3 * _INT_BYTES,
-            tau.ctypes.data,
-            work.ctypes.data,
-            p + 4 * _INT_BYTES,
-            p + 5 * _INT_BYTES,
-        )
-        if ints[5] != 0:
-            return ints[5]
-        for i in range(cols):
-            logd[s, i] = np.log(np.abs(col_major[i, i]))
-        _zungqr(
-            p,
-            p + _INT_BYTES,
-            p + 2 * _INT_BYTES,
-            a_ptr,
-            p + 3 * _INT_BYTES,
-            tau.ctypes.data,
-            work.ctypes.data,
-            p + 4 * _INT_BYTES,
-            p + 5 * _INT_BYTES,
-        )
-        if ints[5] != 0:
-            return ints[5]
-        for i in range(rows):
-            for j in range(cols):
-                frame[s, i, j] = col_major[j, i]
+        if cholesky:
+            if _cholesky_strip(
+                frame, s, logd, backup, gram, sums, ints, chars, reals, one, accept, read_out
+            ):
+                continue
+            fallbacks[0] += 1
+        info = _householder_strip(frame, s, logd, col_major, tau, work, ints)
+        if info != 0:
+            return info
     return 0
 
 
 _local = threading.local()
 
 
-def _workspace(rows: int, cols: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _workspace(rows: int, cols: int) -> tuple[np.ndarray, ...]:
     """Per-thread scratch arrays, reused: fresh ones each call are slow under Dask's
     low ``MALLOC_TRIM_THRESHOLD_``."""
     cache = getattr(_local, "cache", None)
@@ -113,23 +217,67 @@ def _workspace(rows: int, cols: int) -> tuple[np.ndarray, np.ndarray, np.ndarray
             np.empty((cols, rows), dtype=np.complex128),
             np.empty(cols, dtype=np.complex128),
             np.empty(lwork, dtype=np.complex128),
+            np.zeros((cols, cols), dtype=np.complex128),
+            np.empty((rows, cols), dtype=np.complex128),
         )
     return cache[key]
 
 
-def reorthogonalise(frame: np.ndarray) -> np.ndarray:
-    """Replace each frame by the ``Q`` of its Householder QR, in place.
+def _accept_threshold(rows: int, cols: int) -> float:
+    """:data:`ETA_MAX` less the rounding of the computed ``W^H W`` (derived: each entry
+    is a length-``rows`` dot product of columns of norm ≤ √(1 + η), error ≤
+    γ_rows (1 + η); a column of ``cols`` entries sums ``cols`` of them)."""
+    u = np.finfo(np.float64).eps / 2
+    gamma = rows * u / (1.0 - rows * u)
+    return ETA_MAX - cols * gamma * (1.0 + ETA_MAX)
+
+
+def reorthogonalise(
+    frame: np.ndarray,
+    *,
+    cholesky: bool = False,
+    fallbacks: np.ndarray | None = None,
+    read_out: bool = False,
+) -> np.ndarray:
+    """Replace each frame by the ``Q`` of a QR factorisation, in place.
 
     Parameters
     ----------
     frame
         complex128 ``(S, m, n)``, ``m >= n``, C-contiguous.
+    cholesky
+        ``False``: Householder QR (``zgeqrf`` + ``zungqr``), ``Q`` orthonormal to
+        rounding. ``True``: CholeskyQR [1]_ with an a-posteriori certificate: ``G = A^H
+        A``, ``R = chol(G)``, ``W = A R^{-1}``, then an upper bound ``η`` of ``||W^H W −
+        I||_1`` (sum of ``|Re| + |Im|``). A strip is accepted only if the Cholesky
+        factorisation succeeded and ``η ≤ ETA_MAX`` less the rounding of that check;
+        otherwise it is redone by Householder from the untouched input. The decision
+        depends on the frame's values only (deterministic, independent of timing and
+        of the batch). ``W`` is orthonormal only up to ``η``: ``cond(W) ≤ √((1+η)/(1−η))``
+        (``schedule.ORTHO_RESERVE`` in the log), counted in the next interval's bound.
+        ``W R = A + E`` with ``||E||_F ≤ γ_n n √(1+η) ||A||_2`` (derived: row-wise
+        backward error of the triangular solve), so the product of the ``R`` factors
+        telescopes as for Householder: ``W``'s triangular defect cancels in the next
+        factorisation (engine module docstring).
+    fallbacks
+        Optional int64 array of one element, incremented per strip that fell back.
+    read_out
+        With ``cholesky``: return the diagonal of ``A``'s own ``R`` (as Householder
+        would), not of the CholeskyQR factor whose defect the next factorisation
+        telescopes: ``W = Q S`` with ``S = chol(W^H W)`` from the certificate's Gram
+        matrix (one more ``zpotrf``), and ``log|R_ii| + log S_ii`` is returned. For a
+        read-out, after which no factorisation follows.
 
     Returns
     -------
     numpy.ndarray
         ``log|R_ii|``, shape ``(S, n)``. LAPACK does not make ``R``'s diagonal
-        positive, hence the modulus (numpy.linalg.qr documentation).
+        positive, hence the modulus ([M4] tests/REFERENCES.md); Cholesky's is positive.
+
+    References
+    ----------
+    .. [1] [M9] tests/REFERENCES.md (CholeskyQR; Yamamoto et al. 2015, Fukaya et al.
+       2020).
     """
     if frame.dtype != np.complex128 or not frame.flags.c_contiguous or frame.ndim != 3:
         raise ValueError("frame must be a C-contiguous complex128 array (S, m, n)")
@@ -137,8 +285,132 @@ def reorthogonalise(frame: np.ndarray) -> np.ndarray:
     if rows < cols:
         raise ValueError(f"frame has fewer rows ({rows}) than columns ({cols})")
     logd = np.empty((n_strips, cols))
-    col_major, tau, work = _workspace(rows, cols)
-    info = _qr_batch(frame, logd, col_major, tau, work)
+    col_major, tau, work, gram, backup = _workspace(rows, cols)
+    if fallbacks is None:
+        fallbacks = np.zeros(1, dtype=np.int64)
+    accept = _accept_threshold(rows, cols)
+    info = _qr_batch(
+        frame, logd, col_major, tau, work, gram, backup, cholesky, accept, fallbacks, read_out
+    )
     if info != 0:  # pragma: no cover - LAPACK argument error
         raise RuntimeError(f"LAPACK QR failed with info={info}")
     return logd
+
+
+@numba.njit(cache=True, nogil=True, boundscheck=False)
+def _advance_scheduled(  # pragma: no cover - compiled
+    frame,
+    kinds,
+    pcos,
+    psin,
+    table,
+    bounds,
+    rows,
+    growth,
+    budget,
+    log_sum,
+    measuring,
+    logd,
+    col_major,
+    tau,
+    work,
+    gram,
+    backup,
+    cholesky,
+    accept,
+    fallbacks,
+):
+    """Apply a chunk's columns with the re-orthogonalisation schedule, all in compiled code.
+
+    The rule (mirrored by ``schedule._count``): before a column whose bound would take the
+    accumulated growth above ``budget``, do a QR if anything was applied since the last
+    one; a single column above the budget is applied alone. Columns between QRs are
+    applied as one range (per strip the same arithmetic as one at a time). Returns
+    ``(growth, QRs done)``; a negative QR count is a LAPACK error code.
+    """
+    view = frame.view(np.float64)
+    n_cols = bounds.size
+    qrs = 0
+    col = 0
+    while col < n_cols:
+        end = col
+        acc = growth
+        while end < n_cols and acc + bounds[end] <= budget:
+            acc += bounds[end]
+            end += 1
+        if end == col:
+            if growth > 0:
+                info = _qr_batch(
+                    frame,
+                    logd,
+                    col_major,
+                    tau,
+                    work,
+                    gram,
+                    backup,
+                    cholesky,
+                    accept,
+                    fallbacks,
+                    False,
+                )
+                if info != 0:
+                    return growth, -abs(info)
+                qrs += 1
+                if measuring:
+                    for s in range(log_sum.shape[0]):
+                        for i in range(log_sum.shape[1]):
+                            log_sum[s, i] += logd[s, i]
+                growth = 0
+                continue
+            end = col + 1
+            acc = growth + bounds[col]
+        apply_columns(view, kinds, pcos, psin, table, col, end, rows)
+        growth = acc
+        col = end
+    return growth, qrs
+
+
+def advance_scheduled(
+    frame,
+    kinds,
+    pcos,
+    psin,
+    table,
+    bounds,
+    rows,
+    growth,
+    budget,
+    log_sum,
+    measuring,
+    cholesky,
+    fallbacks,
+) -> tuple[int, int]:
+    """Python entry to :func:`_advance_scheduled` with this thread's QR workspace."""
+    n_strips, n_rows, cols = frame.shape
+    col_major, tau, work, gram, backup = _workspace(n_rows, cols)
+    logd = np.empty((n_strips, cols))
+    growth, qrs = _advance_scheduled(
+        frame,
+        kinds,
+        pcos,
+        psin,
+        table,
+        bounds,
+        rows,
+        int(growth),
+        int(budget),
+        log_sum,
+        bool(measuring),
+        logd,
+        col_major,
+        tau,
+        work,
+        gram,
+        backup,
+        bool(cholesky),
+        _accept_threshold(n_rows, cols),
+        fallbacks,
+    )
+    if qrs < 0:  # pragma: no cover - LAPACK argument error
+        raise RuntimeError(f"LAPACK QR failed with info={-qrs}")
+    return int(growth), int(qrs)

@@ -9,20 +9,48 @@ Lyapunov exponents per layer, largest first [1]_, [2]_.
 
 Re-orthogonalisation interval. A column of nodes has condition number
 ``e^{2 max θ}``; products multiply condition numbers, so the sum of ``2 max θ`` over
-the columns applied since the last QR bounds the log of the frame's condition
-number. A QR is done before a column would take that bound above
-``ln(1e-3 / eps)`` (eps = double-precision unit roundoff), so the worst-case
-relative rounding error of the smallest ``R_ii`` stays at the 1e-3 level and the
-typical one, the bound being loose, orders of magnitude below. At ``p = 0``,
-``x = 0`` that is a QR every 8 layers; with blocking nodes at ``ε = 1e-6`` it is one
-every column. The bound is kept in integer units so that the schedule, and with it
-every bit of the result, is independent of how the layers are chunked.
+the columns applied since the last QR, plus the log condition number of the frame the
+last QR left (at most ``ORTHO_RESERVE`` ≈ 0.031, below), bounds the log of the frame's
+condition number ``κ``. A QR is done before a column would take that bound above
+``ln(1e-3 / eps)`` (eps = double-precision unit roundoff), so ``u·κ ≤ 1e-3`` at every
+QR. At ``p = 0``, ``x = 0`` that is a QR every 8 layers; with blocking nodes at
+``ε = 1e-6`` one every column. The bound is kept in integer units so that the schedule,
+and with it every bit of the result, is independent of how the layers are chunked.
+
+QR method and accuracy. Scheduled QRs are CholeskyQR ([M9] tests/REFERENCES.md):
+``G = A^H A``, ``R = chol(G)``, ``W = A R^{-1}``, all BLAS-3, followed by a certificate
+``η ≥ ||W^H W − I||_2`` computed from a second Gram matrix. The strip is accepted if the
+Cholesky factorisation succeeded and ``η ≤ 1/32``; otherwise that strip's frame is
+redone by Householder QR (a decision on the data only, so deterministic and
+independent of chunking). The guarantee is the same as with Householder throughout:
+
+* Backward error. Householder gives ``QR = A + E`` with ``||E|| ≤ c u ||A||``;
+  CholeskyQR gives ``WR = A + E`` with ``||E||_F ≤ γ_n n √(1+η) ||A||_2`` (derived: each
+  row of ``W`` solves ``w R = a`` with ``|ΔR| ≤ γ_n |R|`` and ``||R||_2 = ||A||_2`` up to
+  ``O(u)``), whatever ``κ(A)``. A normwise perturbation ``E`` moves each ``log R_ii`` by
+  at most about ``||E||/σ_min(A) ≤ c' u κ ≤ c' · 1e-3`` (first order), the bound the
+  schedule enforces.
+* Non-orthonormal frames. ``W = Q_W S`` with ``S`` upper triangular, ``diag S = 1 +
+  O(η)``. The engine accumulates ``diag R`` instead of ``diag (S R)``; the next
+  factorisation of ``T W = T Q_W S`` returns ``R' = R_true' S`` whose diagonal carries
+  ``diag S`` back, so ``Σ log R_ii`` telescopes to the exact accumulation. The read-out,
+  after which nothing telescopes, adds the last ``S`` explicitly (``S = chol(W^H W)``
+  from the certificate's Gram matrix, ``reorthogonalise(..., read_out=True)``). What
+  remains of ``η`` is the frame's condition ``√((1+η)/(1−η))`` entering the next
+  interval, which the schedule reserves. The warm-up's last QR (whose ``R`` is
+  discarded) uses Householder, so no ``S`` is dropped there.
+
+With ``κ ≈ 4e6`` after a blocking column at ``ε = 1e-6`` (measured, N = 16 and 64),
+``u κ² ≈ 1e-3`` and the certificate passes with ``η ≈ 1e-3`` (fallback on 0.01–0.3 %
+of strip-QRs); on the clean network ``κ ≈ 2e5`` after 8 layers and ``η ≈ 1e-6``.
 
 References
 ----------
 .. [1] G. Benettin, L. Galgani, A. Giorgilli, J.-M. Strelcyn, Meccanica 15, 9 (1980)
    ([M1] tests/REFERENCES.md).
 .. [2] A. MacKinnon and B. Kramer, Z. Phys. B 53, 1 (1983) ([M1] tests/REFERENCES.md).
+.. [3] Y. Yamamoto et al. (2015), T. Fukaya et al. (2020): CholeskyQR, CholeskyQR2 and
+   shifted CholeskyQR3 ([M9] tests/REFERENCES.md).
 """
 
 from __future__ import annotations
@@ -36,10 +64,10 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from sweepctl import __version__
-from sweepctl.kernel._loops import apply_columns, column_bounds, unit_phases
-from sweepctl.kernel._qr import reorthogonalise
+from sweepctl.kernel._loops import column_bounds, unit_phases
+from sweepctl.kernel._qr import advance_scheduled, reorthogonalise
 from sweepctl.kernel.network import NetworkModel, default_warmup, draw_layers
-from sweepctl.kernel.schedule import GROWTH_SCALE, LOG_COND_BUDGET, growth_units
+from sweepctl.kernel.schedule import GROWTH_SCALE, LOG_COND_BUDGET, budget_units, growth_units
 
 __all__ = [
     "LOG_COND_BUDGET",
@@ -54,7 +82,7 @@ __all__ = [
 
 #: Growth bounds are summed as integers in units of 2**-24 (exact, associative).
 _GROWTH_SCALE = GROWTH_SCALE
-_STATE_FORMAT = 1
+_STATE_FORMAT = 2  # 2: CholeskyQR frames, budget net of the orthogonality reserve
 #: Target number of uniform variates drawn per chunk (a few MB of memory).
 _CHUNK_VARIATES = 400_000
 
@@ -135,9 +163,16 @@ class StripState:
     layers_done: int
     growth_since_qr: int
     rng: np.random.Generator = field(repr=False)
-    budget: int = int(LOG_COND_BUDGET * _GROWTH_SCALE)
+    budget: int = field(default_factory=budget_units)
+    #: scheduled QRs by certified CholeskyQR (``False``: Householder only; tests compare)
+    cholesky: bool = True
     #: QRs done by this object (a diagnostic for benchmarks; not persisted).
     reorthogonalisations: int = 0
+    #: strip-QRs where the CholeskyQR certificate failed and Householder redid it
+    #: (diagnostic, not persisted)
+    fallbacks: np.ndarray = field(
+        default_factory=lambda: np.zeros(1, dtype=np.int64), repr=False, compare=False
+    )
     _work: dict | None = field(default=None, repr=False, compare=False)
 
     # -- construction -----------------------------------------------------------------
@@ -151,6 +186,7 @@ class StripState:
         warmup: int | None = None,
         full: bool = False,
         log_cond_budget: float = LOG_COND_BUDGET,
+        cholesky: bool = True,
     ) -> StripState:
         """A fresh batch of ``strips`` strips with random initial frames.
 
@@ -167,8 +203,11 @@ class StripState:
         full
             Track all ``2N`` exponents instead of the positive ``N``.
         log_cond_budget
-            Re-orthogonalisation threshold (log of the condition-number bound);
-            only tests change it.
+            Re-orthogonalisation threshold (log of the condition-number bound, the
+            orthogonality reserve included); only tests change it.
+        cholesky
+            Scheduled QRs by certified CholeskyQR with Householder fallback (default)
+            or by Householder only (a reference for tests).
         """
         if isinstance(strips, bool) or not isinstance(strips, (int, np.integer)) or strips < 1:
             raise ValueError(f"strips must be an integer >= 1, got {strips!r}")
@@ -193,7 +232,8 @@ class StripState:
             layers_done=0,
             growth_since_qr=0,
             rng=rng,
-            budget=int(log_cond_budget * _GROWTH_SCALE),
+            budget=budget_units(log_cond_budget),
+            cholesky=bool(cholesky),
         )
 
     # -- evolution --------------------------------------------------------------------
@@ -206,8 +246,9 @@ class StripState:
         per_layer = self.strips * max(self.model.draws_per_layer, 2 * self.model.width)
         return int(min(4096, max(8, _CHUNK_VARIATES // per_layer)))
 
-    def _qr(self, measuring: bool) -> None:
-        logd = reorthogonalise(self.frame)
+    def _qr(self, measuring: bool, householder: bool = False) -> None:
+        chol = self.cholesky and not householder
+        logd = reorthogonalise(self.frame, cholesky=chol, fallbacks=self.fallbacks)
         self.reorthogonalisations += 1
         if measuring:
             self.log_sum += logd
@@ -239,8 +280,10 @@ class StripState:
             self.layers_done += k
             remaining -= k
             if self.layers_done == self.warmup and self.warmup > 0:
-                # Warm-up ends: start accumulating from an orthonormal frame.
-                self._qr(measuring=False)
+                # Warm-up ends: start accumulating from an orthonormal frame
+                # (Householder: a CholeskyQR frame's triangular defect would not be
+                # telescoped by an accumulated R here).
+                self._qr(measuring=False, householder=True)
         return self
 
     def _buffers(self) -> dict:
@@ -262,22 +305,24 @@ class StripState:
         return self._work
 
     def _apply_scheduled(self, view, kinds, pcos, psin, table, g, measuring) -> None:
-        rows = self._buffers()["rows"]
-        n_cols = g.size
-        cum = np.cumsum(g)
-        col = 0
-        while col < n_cols:
-            before = int(cum[col - 1]) if col > 0 else 0
-            # Columns col..end-1 fit if growth_since_qr + cum[end-1] - before <= budget.
-            end = int(np.searchsorted(cum, self.budget - self.growth_since_qr + before, "right"))
-            if end <= col:
-                if self.growth_since_qr > 0:
-                    self._qr(measuring)
-                    continue
-                end = col + 1  # a single column above the budget: apply it alone
-            apply_columns(view, kinds, pcos, psin, table, col, end, rows)
-            self.growth_since_qr += int(cum[end - 1]) - before
-            col = end
+        # The schedule's loop runs compiled (one call per chunk): per column a Python
+        # round trip cost ~15 µs, a fifth of the time at N = 16 with a QR every column.
+        self.growth_since_qr, qrs = advance_scheduled(
+            self.frame,
+            kinds,
+            pcos,
+            psin,
+            table,
+            g,
+            self._buffers()["rows"],
+            self.growth_since_qr,
+            self.budget,
+            self.log_sum,
+            measuring,
+            self.cholesky,
+            self.fallbacks,
+        )
+        self.reorthogonalisations += qrs
 
     # -- read-out ---------------------------------------------------------------------
     def result(self) -> LyapunovResult:
@@ -288,7 +333,7 @@ class StripState:
                 f"no measured layers yet (warm-up is {self.warmup} layers, "
                 f"{self.layers_done} done); advance further before reading exponents"
             )
-        logd = reorthogonalise(self.frame.copy())
+        logd = reorthogonalise(self.frame.copy(), cholesky=self.cholesky, read_out=True)
         exps = (self.log_sum + logd) / n_meas
         w = self.model.neg_log_t_table()
         sum_rule = np.einsum("shk,hk->s", self.node_counts, w) / n_meas
@@ -317,6 +362,7 @@ class StripState:
             "layers_done": self.layers_done,
             "growth_since_qr": self.growth_since_qr,
             "budget": self.budget,
+            "cholesky": self.cholesky,
             "bit_generator": self.rng.bit_generator.state,
         }
         buf = io.BytesIO()
@@ -365,6 +411,7 @@ class StripState:
                 growth_since_qr=int(meta["growth_since_qr"]),
                 rng=np.random.Generator(bitgen),
                 budget=int(meta["budget"]),
+                cholesky=bool(meta["cholesky"]),
             )
 
 

@@ -5,9 +5,10 @@ A column of nodes has condition number ``e^{2 max θ}`` (the largest node block
 which share one schedule). Products multiply condition numbers, so the sum ``G`` of
 ``2 max θ`` over the columns applied since the last QR bounds the log of the frame's
 condition number. The engine does a QR before a column would take ``G`` above
-:data:`LOG_COND_BUDGET` = ln(1e-3/eps); a single column above the budget is applied
-alone. ``G`` is summed in integer units of 2⁻²⁴ so that the schedule does not depend
-on how layers are chunked.
+:data:`COLUMN_BUDGET` = ln(1e-3/eps) − :data:`ORTHO_RESERVE` (the reserve covers the
+frame a CholeskyQR leaves, orthonormal only to ``η ≤ ETA_MAX``); a single column above
+the budget is applied alone. ``G`` is summed in integer units of 2⁻²⁴ so that the
+schedule does not depend on how layers are chunked.
 
 :func:`expected_qr_per_layer` replays exactly that rule on columns drawn from the
 model's node distribution (no frame is touched), which is what cost estimates need:
@@ -27,8 +28,11 @@ import numpy as np
 from sweepctl.kernel.network import BLOCKING, NORMAL, OPEN, NetworkModel
 
 __all__ = [
+    "COLUMN_BUDGET",
+    "ETA_MAX",
     "GROWTH_SCALE",
     "LOG_COND_BUDGET",
+    "ORTHO_RESERVE",
     "budget_units",
     "column_growth_law",
     "expected_qr_per_layer",
@@ -37,6 +41,15 @@ __all__ = [
 
 #: Log of the largest condition-number bound allowed between two QRs.
 LOG_COND_BUDGET = math.log(1e-3 / np.finfo(np.float64).eps)
+#: Largest orthogonality defect ``η ≥ ||W^H W − I||_2`` accepted from a CholeskyQR
+#: (``sweepctl.kernel._qr``; above it that strip falls back to Householder).
+ETA_MAX = 1.0 / 32.0
+#: Log condition number a frame with defect ``η ≤ ETA_MAX`` brings into the next
+#: interval: ``cond(W) ≤ √((1 + η)/(1 − η))`` (derived: ``W^H W``'s eigenvalues lie in
+#: ``[1 − η, 1 + η]``). Reserved out of :data:`LOG_COND_BUDGET` for every interval.
+ORTHO_RESERVE = 0.5 * math.log((1.0 + ETA_MAX) / (1.0 - ETA_MAX))
+#: What the columns of one interval may add: ``LOG_COND_BUDGET − ORTHO_RESERVE``.
+COLUMN_BUDGET = LOG_COND_BUDGET - ORTHO_RESERVE
 #: Growth bounds are summed as integers in units of 2**-24 (exact, associative).
 GROWTH_SCALE = 2.0**24
 
@@ -47,8 +60,9 @@ def growth_units(model: NetworkModel) -> np.ndarray:
 
 
 def budget_units(log_cond_budget: float = LOG_COND_BUDGET) -> int:
-    """The budget in the same integer units."""
-    return int(log_cond_budget * GROWTH_SCALE)
+    """The columns' share of the budget, ``log_cond_budget − ORTHO_RESERVE``, in the same
+    integer units (never negative)."""
+    return max(0, int((log_cond_budget - ORTHO_RESERVE) * GROWTH_SCALE))
 
 
 def column_growth_law(model: NetworkModel, strips: int) -> list[tuple[np.ndarray, np.ndarray]]:

@@ -4,8 +4,10 @@ Run: ``python tests/benchmarks/bench_kernel.py [--repeats 5] [--layers-scale F]`
 
 Prints one table: per case the median process-CPU seconds of the kernel and of the
 peer over interleaved repeats (kernel, peer, kernel, peer, …), their ratio, the QRs per
-layer each does, and both Γ with their standard errors (the same layers and strips give
-the same statistical error; the two Γ agree within it, different streams).
+layer each does, the kernel's share of strip-QRs where the CholeskyQR certificate failed
+and Householder redid it (last repeat), and both Γ with their standard errors (the same
+layers and strips give the same statistical error; the two Γ agree within it, different
+streams).
 
 Conditions (issue 11): 8 strips, no warm-up layers on either side, x = 0, one BLAS
 thread. The thread limit is set through the environment *before* NumPy or SciPy are
@@ -60,13 +62,14 @@ def gamma_of(exponents: np.ndarray, n: int) -> tuple[float, float]:
     return float(g.mean()), float(g.std(ddof=1) / math.sqrt(g.size))
 
 
-def run_kernel(n: int, p: float, layers: int, seed: int):
+def run_kernel(n: int, p: float, layers: int, seed: int, cholesky: bool = True):
     model = NetworkModel(n, 0.0, p, p, EPS)
-    st = StripState.start(model, strips=STRIPS, seed=seed, warmup=0)
+    st = StripState.start(model, strips=STRIPS, seed=seed, warmup=0, cholesky=cholesky)
     t0 = time.process_time()
     st.advance(layers)
     res = st.result()
-    return time.process_time() - t0, res.exponents, (st.reorthogonalisations + 1) / layers
+    fb = float(st.fallbacks[0]) / max(1, st.reorthogonalisations * STRIPS)
+    return time.process_time() - t0, res.exponents, (st.reorthogonalisations + 1) / layers, fb
 
 
 def run_peer(n: int, p: float, layers: int, seed: int):
@@ -83,6 +86,11 @@ def main() -> None:
     ap.add_argument("--layers-scale", type=float, default=1.0)
     ap.add_argument("--repeats", type=int, default=3, help="interleaved runs of each (median)")
     ap.add_argument("--only", default="", help="comma-separated case indices (default all)")
+    ap.add_argument(
+        "--householder",
+        action="store_true",
+        help="kernel with Householder QRs only (the method before CholeskyQR; for comparison)",
+    )
     args = ap.parse_args()
     StripState.start(NetworkModel(4, 0.0, 0.3, 0.3), strips=2, warmup=0).advance(4).result()
     cases = CASES
@@ -91,16 +99,18 @@ def main() -> None:
     print(
         f"{STRIPS} strips, x = 0, no warm-up, one BLAS thread, ε = {EPS:g}, "
         f"median of {args.repeats} interleaved runs, process CPU seconds"
+        + (", kernel with Householder QRs only" if args.householder else "")
     )
     print(
         f"{'case':>6} {'N':>4} {'layers':>7} {'kernel s':>9} {'peer s':>8} {'ratio':>7}"
-        f" {'target':>6} {'QR/layer k|p':>13}  {'Γ kernel':>17}  {'Γ peer':>17}"
+        f" {'target':>6} {'QR/layer k|p':>13} {'HH fallback':>11}  {'Γ kernel':>17}"
+        f"  {'Γ peer':>17}"
     )
     for label, n, p, layers in cases:
         layers = max(8, int(layers * args.layers_scale))
         tk, tp = [], []
         for rep in range(args.repeats):
-            dt, ek, qk = run_kernel(n, p, layers, seed=1 + rep)
+            dt, ek, qk, fb = run_kernel(n, p, layers, 1 + rep, not args.householder)
             tk.append(dt)
             dt, ep, qp = run_peer(n, p, layers, seed=101 + rep)
             tp.append(dt)
@@ -109,7 +119,7 @@ def main() -> None:
         gp, sp = gamma_of(ep, n)
         print(
             f"{label:>6} {n:>4} {layers:>7} {mk:>9.3f} {mp:>8.3f} {mp / mk:>6.2f}×"
-            f" {TARGETS[(label, n)]:>5.1f}× {qk:>6.3f}|{qp:<6.3f}"
+            f" {TARGETS[(label, n)]:>5.1f}× {qk:>6.3f}|{qp:<6.3f} {100 * fb:>10.2f}%"
             f"  {gk:7.4f} ± {sk:.4f}  {gp:7.4f} ± {sp:.4f}",
             flush=True,
         )

@@ -10,6 +10,7 @@ import pyarrow.parquet as pq
 import pytest
 from scipy import stats
 
+from sweepctl.bench import CALIBRATION_FORMAT
 from sweepctl.campaign.plan import replica_seed
 from sweepctl.campaign.recipe import Point, RecipeError, parse_recipe
 from sweepctl.kernel import lyapunov_spectrum
@@ -60,7 +61,9 @@ def _calibration(path):
         for n in CAL_WIDTHS
     ]
     path.write_text(
-        json.dumps({"kind": "sweepctl-kernel-calibration", "format": 2, "widths": rows})
+        json.dumps(
+            {"kind": "sweepctl-kernel-calibration", "format": CALIBRATION_FORMAT, "widths": rows}
+        )
     )
     return path
 
