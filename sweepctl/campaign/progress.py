@@ -29,6 +29,7 @@ __all__ = [
     "build_progress",
     "fit_slice_key",
     "preview_run",
+    "replica_price",
 ]
 
 
@@ -178,6 +179,17 @@ def preview_run(
         ),
         progress,
     )
+
+
+def replica_price(frozen: Frozen, cost, pp: PointProgress) -> float | None:
+    """CPU seconds of one replica of ``pp``'s point: the frozen price (goal campaigns),
+    else the cost model's (``cost`` may be None: then None)."""
+    v = frozen.price_for(pp.point)
+    if v is not None:
+        return v
+    if cost is None:
+        return None
+    return float(cost.replica_seconds(pp.point, pp.layers, pp.warmup, frozen.strips))
 
 
 def fit_slice_key(point: Point) -> str:

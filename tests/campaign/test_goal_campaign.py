@@ -58,11 +58,53 @@ def test_a_goal_campaign_stores_the_same_replicas_when_cut_and_resumed(tmp_path)
     assert events(cut)[-1]["event"] == "interrupted"
     assert 0 < len(_rows(cut)) < len(want)
     assert [d["round"] for d in _rounds(cut)] == [1]
-    proc = cli("run", recipe, "--store", cut, "--workers", "2", "--calibration", cal)
+    # resumed on "another machine": a calibration 3x faster at N = 4 and with the cost
+    # growing as N^3, so its prices would shift replicas between widths
+    other = _other_calibration(tmp_path / "other.json")
+    assert _replayed_with(cut, other) != [d["replicas"] for d in rounds[:1]]
+    proc = cli("run", recipe, "--store", cut, "--workers", "2", "--calibration", other)
     assert proc.returncode == 0, proc.stdout + proc.stderr
     assert [(r["point_key"], r["replica"], r["gamma_strips"]) for r in _rows(cut)] == want
-    # every decision logged once, and the same as the uninterrupted run's
-    keep = ("round", "reason", "forms", "replicas", "nu", "nu_halfwidth")
+    # every decision logged once, and the same as the uninterrupted run's: the prices
+    # were frozen with the store
+    keep = ("round", "reason", "forms", "replicas", "nu", "nu_halfwidth", "cpu_seconds_spent")
     assert [{k: d[k] for k in keep} for d in _rounds(cut)] == [
         {k: d[k] for k in keep} for d in rounds
     ]
+    # rehearsal rows are charged the frozen price, whichever calibration ran them
+    assert [r["cpu_seconds"] for r in _rows(cut)] == [r["cpu_seconds"] for r in _rows(whole)]
+    # status needs no calibration once the prices are frozen
+    proc = cli("status", cut, "--json")
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    assert json.loads(proc.stdout)["totals"]["goal"]["reason"] == "goal met"
+
+
+def _other_calibration(path):
+    rows = [
+        {
+            "width": n,
+            "column_seconds": 3.3e-6 * (n / 4) ** 3,
+            "column_seconds_disorder": 3.3e-5 * (n / 4) ** 3,
+            "qr_seconds": 1e-30,
+        }
+        for n in (4, 8, 16)
+    ]
+    path.write_text(
+        json.dumps({"kind": "sweepctl-kernel-calibration", "format": 2, "widths": rows})
+    )
+    return path
+
+
+def _replayed_with(store, cal_path):
+    """Round 1's replicas as the stored pilot would get them priced by ``cal_path``."""
+    from sweepctl.campaign.cost import CostModel
+    from sweepctl.campaign.progress import GoalRounds, build_progress
+    from sweepctl.campaign.store import Store
+    from sweepctl.campaign.summary import store_recipe
+
+    st = Store(store)
+    _, recipe, frozen = store_recipe(st)
+    cost = CostModel(json.loads(cal_path.read_text())["widths"])
+    progress = build_progress(recipe, frozen, st.read_replicas())
+    price = lambda pp: cost.replica_seconds(pp.point, pp.layers, pp.warmup, frozen.strips)  # noqa: E731
+    return [d["replicas"] for d in GoalRounds(recipe, frozen, price).advance(progress)[:1]]
