@@ -200,9 +200,11 @@ def fit_slice_key(point: Point) -> str:
 class GoalRounds:
     """Campaign-wide rounds of a recipe with a goal (module docstring).
 
-    ``price(pp)`` is the CPU seconds of one replica of ``pp``'s point (the cost model's,
-    never a measured time: decisions must not depend on timing); ``fitter(data,
-    symmetric)`` the slice fit (:func:`~sweepctl.campaign.allocate.fit_slice`).
+    ``price(pp)`` is the CPU seconds of one replica of ``pp``'s point (the frozen or the
+    cost model's price, never a measured time: decisions must not depend on timing);
+    ``fitter(data, symmetric)`` the slice fit, a :class:`~sweepctl.fss.fit.Fit` (or None)
+    or a pair (fit, alternatives) as
+    :func:`~sweepctl.campaign.allocate.fit_slice_branches` returns (the default).
     """
 
     def __init__(
@@ -212,7 +214,7 @@ class GoalRounds:
         price: Callable[[PointProgress], float],
         fitter: Callable | None = None,
     ) -> None:
-        from sweepctl.campaign.allocate import fit_slice
+        from sweepctl.campaign.allocate import fit_slice_branches
 
         if recipe.goal is None:
             raise ValueError("goal rounds need a recipe with [goal]")
@@ -220,7 +222,7 @@ class GoalRounds:
         self.target = recipe.target
         self.min_estimates = frozen.min_strip_estimates
         self.price = price
-        self.fitter = fitter or fit_slice
+        self.fitter = fitter or fit_slice_branches
         #: rounds decided so far (round 0 is every point's first round)
         self.round = 0
         #: why the campaign stopped (``allocate``'s reason), or None
@@ -250,8 +252,10 @@ class GoalRounds:
             slices = []
             for key, pts in sorted(by_slice.items()):
                 symmetric = pts[0].point.p_block == pts[0].point.p_open
-                fit = self.fitter(slice_data(pts), symmetric)
-                slices.append(SliceState(key, tuple(pts), fit, self.goal.nu_halfwidth))
+                fit, alts = self.fitter(slice_data(pts), symmetric), ()
+                if isinstance(fit, tuple):
+                    fit, alts = fit
+                slices.append(SliceState(key, tuple(pts), fit, self.goal.nu_halfwidth, tuple(alts)))
             spent = sum(p.replicas * p.replica_seconds for s in slices for p in s.points)
             a = allocate(
                 slices,
@@ -276,6 +280,14 @@ class GoalRounds:
                         s.key: None if s.fit is None else s.fit.model.describe() for s in slices
                     },
                     "nu": {s.key: None if s.fit is None else s.fit.values()["nu"] for s in slices},
+                    # fits whose ν disagrees with the choice's (branches, other forms)
+                    "alternatives": {
+                        s.key: [
+                            {"form": f.model.describe(), "nu": f.values()["nu"]}
+                            for f in s.alternatives
+                        ]
+                        for s in slices
+                    },
                     "nu_halfwidth": {k: _finite(v) for k, v in a.halfwidth.items()},
                     "projected_halfwidth": {k: _finite(v) for k, v in a.projected.items()},
                     "replicas": grown,
