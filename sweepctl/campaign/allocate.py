@@ -368,7 +368,11 @@ def allocate(
         if want <= p.replicas:
             continue
         floor_met = False
-        afford = int(left // p.replica_seconds) if p.replica_seconds > 0 else want
+        afford = (
+            int(left // p.replica_seconds)
+            if p.replica_seconds > 0 and math.isfinite(left)
+            else want
+        )
         add = min(want - p.replicas, afford)
         short_of_budget = short_of_budget or add < want - p.replicas
         wanted[p.point.key] += add
@@ -385,7 +389,11 @@ def allocate(
                 math.ceil((growth - 1.0) * p.replicas),
                 p.max_replicas - wanted[p.point.key],
             )
-            afford = int(left // p.replica_seconds) if p.replica_seconds > 0 else add
+            afford = (
+                int(left // p.replica_seconds)
+                if p.replica_seconds > 0 and math.isfinite(left)
+                else add
+            )
             short_of_budget = short_of_budget or afford < add
             add = max(0, min(add, afford))
             wanted[p.point.key] += add
@@ -413,7 +421,9 @@ def allocate(
         for s in slices
     )
 
-    round_limit = max((growth - 1.0) * sum(p.replicas * p.replica_seconds for p in points), spent)
+    prefix_cpu = sum(p.replicas * p.replica_seconds for p in points)
+    # growth = inf: no round limit (a projection to the goal, not a round)
+    round_limit = math.inf if math.isinf(growth) else max((growth - 1.0) * prefix_cpu, spent)
     # slices still short of their goal, each with its rows' keys, costs, counts and caps
     open_: list[tuple[str, SliceDesign, float, list[str], np.ndarray, np.ndarray, np.ndarray]]
     open_ = []

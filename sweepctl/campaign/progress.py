@@ -305,3 +305,82 @@ class GoalRounds:
 
 def _finite(v: float) -> float | None:
     return float(v) if math.isfinite(v) else None
+
+
+def project_goal(
+    recipe: Recipe,
+    frozen: Frozen,
+    progress: dict[str, PointProgress],
+    price: Callable[[PointProgress], float],
+    fitter: Callable | None = None,
+) -> dict:
+    """CPU to reach the goal from the stored rows: the linearised projection.
+
+    Every point's longest complete stored prefix is fitted per slice (the goal rounds'
+    fitter) and :func:`~sweepctl.campaign.allocate.allocate` is asked, without the
+    round limit, for the replicas that bring each slice's linearised half-width within
+    its goal. The projection trusts the fitted form: a later round can refit another
+    form, or find branches, and need more. ``projected_cpu_hours`` is None while a slice
+    has no stable form (its rounds grow uniformly until one is found).
+    """
+    from sweepctl.campaign.allocate import (
+        PointState,
+        SliceState,
+        allocate,
+        fit_slice_branches,
+        slice_data,
+    )
+
+    if recipe.goal is None:
+        raise ValueError("a projection needs a recipe with [goal]")
+    fitter = fitter or fit_slice_branches
+    by_slice: dict[str, list[PointState]] = {}
+    for pp in sorted(progress.values(), key=lambda q: q.point.key):
+        if pp.failed:
+            continue
+        n = 0
+        while n in pp.done:
+            n += 1
+        by_slice.setdefault(fit_slice_key(pp.point), []).append(
+            PointState(
+                point=pp.point,
+                prefix=tuple(pp.done[r] for r in range(n)),
+                replica_seconds=float(price(pp)),
+                max_replicas=pp.max_replicas,
+            )
+        )
+    slices, out_slices = [], {}
+    for key, pts in sorted(by_slice.items()):
+        symmetric = pts[0].point.p_block == pts[0].point.p_open
+        fit, alts = None, ()
+        if all(p.replicas >= 1 for p in pts):
+            fit = fitter(slice_data(pts), symmetric)
+            if isinstance(fit, tuple):
+                fit, alts = fit
+        slices.append(SliceState(key, tuple(pts), fit, recipe.goal.nu_halfwidth, tuple(alts)))
+        out_slices[key] = {
+            "form": None if fit is None else fit.model.describe(),
+            "nu": None if fit is None else fit.values()["nu"],
+            "alternatives": len(alts),
+        }
+    spent = sum(p.replicas * p.replica_seconds for s in slices for p in s.points)
+    out = {
+        "cpu_hours_spent": spent / 3600.0,
+        "projected_cpu_hours": None,
+        "slices": out_slices,
+    }
+    if any(s.fit is None for s in slices):
+        return out
+    a = allocate(
+        slices,
+        target=recipe.target,
+        min_estimates=frozen.min_strip_estimates,
+        budget_seconds=math.inf,
+        growth=math.inf,
+    )
+    for s in slices:
+        out_slices[s.key]["halfwidth"] = _finite(a.halfwidth[s.key])
+        out_slices[s.key]["projected_halfwidth"] = _finite(a.projected[s.key])
+    out["projected_cpu_hours"] = (spent + a.seconds) / 3600.0
+    out["reason"] = a.reason
+    return out

@@ -62,6 +62,7 @@ from sweepctl.campaign.allocate import (
     SliceDesign,
     SliceState,
     fit_slice,
+    fit_slice_branches,
     slice_data,
 )
 from sweepctl.campaign.cost import CostModel
@@ -110,12 +111,13 @@ def _acceptable(f: Fit) -> bool:
 
 
 class StableRule:
-    """The procedure's stable choice each round (what the driver does)."""
+    """The procedure's stable choice each round and the alternatives that disagree with
+    it (what the driver does: :func:`~sweepctl.campaign.allocate.fit_slice_branches`)."""
 
     name = "stable"
 
-    def __call__(self, data: ScalingData, symmetric: bool) -> Fit | None:
-        return fit_slice(data, symmetric)
+    def __call__(self, data: ScalingData, symmetric: bool):
+        return fit_slice_branches(data, symmetric)
 
 
 class FrozenRule:
@@ -204,7 +206,7 @@ def fit_aware(seed: int, goal: float, rule: str, cost: CostModel) -> Outcome:
 
     def keep(data, symmetric):
         f = fitter(data, symmetric)
-        last["fit"] = f
+        last["fit"] = f[0] if isinstance(f, tuple) else f
         return f
 
     progress = build_progress(recipe, frozen, None)
@@ -252,13 +254,18 @@ def uniform(seed: int, goal: float, rule: str, cost: CostModel) -> Outcome:
         rounds += 1
         pts = _slice_states(progress, price)
         symmetric = pts[0].point.p_block == pts[0].point.p_open
-        f = fitter(slice_data(pts), symmetric)
+        f, alts = _pair(fitter(slice_data(pts), symmetric))
         hw = math.inf
         if f is not None:
-            hw = SliceDesign(SliceState("s", tuple(pts), f, goal)).halfwidth()
-            if hw <= goal:
+            d = SliceDesign(SliceState("s", tuple(pts), f, goal, alts))
+            hw = d.halfwidth()
+            # as for the goal rounds: the goal needs every alternative separated
+            if hw <= goal and not d.unseparated().any():
                 break
-            t *= min(max(goal / (hw * math.sqrt(MARGIN)), 0.5), 0.99)
+            if hw > goal:
+                t *= min(max(goal / (hw * math.sqrt(MARGIN)), 0.5), 0.99)
+            else:  # only the alternatives are left: twice the replicas
+                t /= math.sqrt(2.0)
         else:
             t /= math.sqrt(2.0)
         for pp in progress.values():  # the per-point rule at target t
@@ -286,6 +293,10 @@ def uniform(seed: int, goal: float, rule: str, cost: CostModel) -> Outcome:
     )
 
 
+def _pair(f) -> tuple[Fit | None, tuple[Fit, ...]]:
+    return (f[0], tuple(f[1])) if isinstance(f, tuple) else (f, ())
+
+
 def _one(job):
     strategy, seed, goal, rule, cal = job
     cost = CostModel(cal)
@@ -300,8 +311,16 @@ def rehearsal_table(seeds, goal, rules, cal, processes) -> dict:
         for seed in seeds
         for s in ("uniform", "fit-aware")
     ]
+    results = []
     with ProcessPoolExecutor(processes) as ex:
-        results = list(ex.map(_one, jobs))
+        for job, r in zip(jobs, ex.map(_one, jobs), strict=True):
+            # one line per run as it ends (a long benchmark can be cut)
+            print(
+                f"  {job[3]:7} {r.strategy:9} seed {r.seed:5}: {r.cpu_seconds / 3600:.4f} CPU-h, "
+                f"nu = {r.nu:.4f} ± {Z95 * r.sigma:.4f}, {r.rounds} rounds, {r.form}",
+                flush=True,
+            )
+            results.append(r)
     rule_of = {id(r): job[3] for r, job in zip(results, jobs, strict=True)}
     out: dict = {}
     nu = LAW["nu"]
@@ -407,7 +426,7 @@ def _store_fit(store: Path, goal: float, rule: str, cal: list[dict]):
         return cost.replica_seconds(pp.point, pp.layers, pp.warmup, frozen.strips)
 
     pts = _slice_states(prog, price)
-    f = RULES[rule]()(slice_data(pts), True)
+    f, _ = _pair(RULES[rule]()(slice_data(pts), True))
     hw = math.inf if f is None else SliceDesign(SliceState("s", tuple(pts), f, goal)).halfwidth()
     cpu = float(np.sum(rows.column("cpu_seconds").to_numpy()))
     return f, hw, cpu

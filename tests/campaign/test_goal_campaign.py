@@ -73,6 +73,31 @@ def test_a_goal_campaign_stores_the_same_replicas_when_cut_and_resumed(tmp_path)
     ]
     # rehearsal rows are charged the frozen price, whichever calibration ran them
     assert [r["cpu_seconds"] for r in _rows(cut)] == [r["cpu_seconds"] for r in _rows(whole)]
+    # audit replays the rounds from the stored rows and finds them as logged ...
+    for store in (whole, cut):
+        proc = cli("audit", store, "--json")
+        assert proc.returncode == 0, proc.stdout + proc.stderr
+        doc = json.loads(proc.stdout)
+        assert doc["allocation"] == {
+            "rounds_logged": len(rounds),
+            "rounds_replayed": len(rounds),
+            "reason": "goal met",
+            "mismatches": 0,
+        }
+    # ... and names a logged decision the rows do not support
+    lines = (whole / "events.jsonl").read_text().splitlines()
+    forged = []
+    for line in lines:
+        e = json.loads(line)
+        if e.get("event") == "allocation" and e["round"] == 1:
+            k = sorted(e["replicas"])[0]
+            e["replicas"][k] += 1
+            line = json.dumps(e)
+        forged.append(line)
+    (whole / "events.jsonl").write_text("\n".join(forged) + "\n")
+    proc = cli("audit", whole)
+    assert proc.returncode == 1, proc.stdout + proc.stderr
+    assert "allocation round 1: the logged replicas differ" in proc.stdout, proc.stdout
     # status needs no calibration once the prices are frozen
     proc = cli("status", cut, "--json")
     assert proc.returncode == 0, proc.stdout + proc.stderr
