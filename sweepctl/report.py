@@ -215,7 +215,7 @@ def cpu_rows(part: pd.DataFrame) -> list[list[str]]:
             [
                 str(n),
                 str(int(np.nansum(reps[i]))),
-                _fmt(c, 4),
+                f"{c:.4g}",
                 f"{100 * c / total:.0f} %" if total > 0 else "—",
                 ", ".join(f"{x:g}" for x in top),
             ]
