@@ -946,6 +946,9 @@ def _goal_line(goal: dict) -> str:
     ]
     spent = goal["cpu_hours_spent"]
     tail = f"; {spent:.3g} CPU-hours spent" if spent is not None else ""
+    proj = goal.get("projected_cpu_hours")
+    if proj is not None and not goal["reason"]:
+        tail += f", about {proj:.3g} projected to the goal (linearised)"
     state = f"stopped: {goal['reason']}" if goal["reason"] else f"round {goal['round']}"
     return f"{head}; {state}{tail}" + ("; " + "; ".join(parts) if parts else "")
 

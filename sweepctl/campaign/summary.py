@@ -10,7 +10,7 @@ import pandas as pd
 
 from sweepctl.campaign.cost import CostModel
 from sweepctl.campaign.plan import Frozen
-from sweepctl.campaign.progress import GoalRounds, build_progress, replica_price
+from sweepctl.campaign.progress import GoalRounds, build_progress, project_goal, replica_price
 from sweepctl.campaign.recipe import Recipe
 from sweepctl.campaign.store import Store
 
@@ -262,6 +262,12 @@ def _goal_state(recipe, frozen, progress, cost: CostModel | None) -> dict | None
     rounds = GoalRounds(recipe, frozen, lambda pp: replica_price(frozen, cost, pp))
     decided = rounds.advance(progress)
     out["round"], out["reason"] = rounds.round, rounds.reason
+    # what the rounds still need, projected from the stored prefixes (none once stopped)
+    out["projected_cpu_hours"] = None
+    if rounds.reason is None:
+        out["projected_cpu_hours"] = project_goal(
+            recipe, frozen, progress, lambda pp: replica_price(frozen, cost, pp)
+        )["projected_cpu_hours"]
     if decided:
         last = decided[-1]
         out["cpu_hours_spent"] = last["cpu_seconds_spent"] / 3600.0

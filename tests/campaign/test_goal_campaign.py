@@ -58,6 +58,11 @@ def test_a_goal_campaign_stores_the_same_replicas_when_cut_and_resumed(tmp_path)
     assert events(cut)[-1]["event"] == "interrupted"
     assert 0 < len(_rows(cut)) < len(want)
     assert [d["round"] for d in _rounds(cut)] == [1]
+    # status mid-campaign: the CPU projected to the goal, beyond what is stored
+    proc = cli("status", cut, "--json")
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    g = json.loads(proc.stdout)["totals"]["goal"]
+    assert g["reason"] is None and g["projected_cpu_hours"] > g["cpu_hours_spent"] > 0
     # resumed on "another machine": a calibration 3x faster at N = 4 and with the cost
     # growing as N^3, so its prices would shift replicas between widths
     other = _other_calibration(tmp_path / "other.json")
@@ -102,6 +107,34 @@ def test_a_goal_campaign_stores_the_same_replicas_when_cut_and_resumed(tmp_path)
     proc = cli("status", cut, "--json")
     assert proc.returncode == 0, proc.stdout + proc.stderr
     assert json.loads(proc.stdout)["totals"]["goal"]["reason"] == "goal met"
+
+    # plan with a goal: on the finished store the pilot is what rounds 0 stored and the
+    # projection is what was spent (the goal is met on these prefixes: nothing to add)
+    proc = cli("plan", recipe, cut, "--json", "--calibration", other)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    g = json.loads(proc.stdout)["goal"]
+    rows = _rows(cut)
+    pilot = [r for r in rows if r["replica"] < GOAL["replica"]["initial"]]
+    assert g["pilot_replicas"] == len(pilot)
+    assert abs(g["pilot_cpu_hours"] - sum(r["cpu_seconds"] for r in pilot) / 3600) < 1e-12
+    spent = sum(r["cpu_seconds"] for r in rows) / 3600
+    assert g["basis"] == f"the store's {len(rows):,} replicas"
+    assert abs(g["projected_cpu_hours"] - spent) <= 1e-9 * spent
+    # without a store, a rehearsal recipe's pilot is drawn in process with the same seeds
+    proc = cli("plan", recipe, "--json", "--calibration", cal)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    g = json.loads(proc.stdout)["goal"]
+    assert g["basis"] == "a pilot round drawn from the rehearsal law"
+    assert g["pilot_cpu_hours"] < g["projected_cpu_hours"] < GOAL["goal"]["cpu_hours"]
+    proc = cli("plan", recipe, "--calibration", cal)
+    assert "projected to the goal: about" in proc.stdout, proc.stdout
+    # the network kernel's pilot must be run before anything can be projected
+    net = write_recipe(tmp_path / "net.toml", {k: v for k, v in GOAL.items() if k != "model"})
+    proc = cli("plan", net, "--json", "--calibration", cal)
+    assert proc.returncode == 0, proc.stdout + proc.stderr
+    g = json.loads(proc.stdout)["goal"]
+    assert g["projected_cpu_hours"] is None and g["pilot_cpu_hours"] > 0
+    assert "run the pilot round" in g["note"]
 
 
 def _other_calibration(path):
