@@ -164,12 +164,8 @@ MAX_ORDERS = DEFAULT_MAX_ORDERS
 
 
 def fit_slice(data: ScalingData, symmetric: bool) -> Fit | None:
-    """The slice's fit the allocator linearises: the procedure's stable choice
-    (:func:`sweepctl.fss.procedure.stable_forms`: every form up to :data:`MAX_ORDERS` at
-    every N_min, as ``sweepctl fit`` scans), or None when no form is stable yet.
-
-    Deterministic (fixed design seeds), so a replay of the rounds fits the same form.
-    """
+    """The slice's fit the allocator linearises (:func:`fit_slice_branches`), or None
+    when no form is stable yet."""
     return fit_slice_branches(data, symmetric)[0]
 
 
@@ -184,20 +180,42 @@ def _disjoint(a: tuple[float, float], b: tuple[float, float]) -> bool:
 
 
 def fit_slice_branches(data: ScalingData, symmetric: bool) -> tuple[Fit | None, tuple[Fit, ...]]:
-    """:func:`fit_slice` and the alternatives that disagree with it (module docstring,
-    "Ambiguous slices"): other acceptable minima of the chosen form, and the best
-    acceptable minimum of each stable form with at most ``SPREAD_EXTRA_PARAMS`` more
-    parameters none of whose acceptable minima overlaps the choice's ν interval."""
+    """The fit the allocator linearises and the alternatives that disagree with it.
+
+    The form rule: of the stable forms (:func:`sweepctl.fss.procedure.stable_forms`, the
+    scan of ``sweepctl fit`` up to :data:`MAX_ORDERS` at every N_min) with at most
+    ``SPREAD_EXTRA_PARAMS`` more parameters than the fewest-parameter one — the forms
+    whose spread the procedure reports beside its interval — the one with the widest
+    linearised ν interval (the first of equals in the scan's order). Steering by the
+    fewest-parameter form alone let a truncated form's bias through: on the rehearsal
+    law with a ρ⁴ term it put the replicas where that form is most wrong, and its ν
+    intervals covered the law's ν less often than uniform precision did
+    (tests/benchmarks/bench_allocation.py, DEVELOPERS.md).
+
+    Alternatives (module docstring, "Ambiguous slices"): other acceptable minima of the
+    chosen form, and the best acceptable minimum of each of those stable forms none of
+    whose acceptable minima overlaps the choice's ν interval. Deterministic (fixed
+    design seeds), so a replay of the rounds fits the same forms.
+    """
     if len(data.widths()) < 2:
         return None, ()
     stable = stable_forms(data, symmetric, MAX_ORDERS)
     if not stable:
         return None, ()
-    choice = stable[0]
+    near = [r for r in stable if r.model.n_params <= stable[0].model.n_params + SPREAD_EXTRA_PARAMS]
+
+    def width(r) -> float:
+        e = r.fit.linear_error("nu")
+        return e if math.isfinite(e) else -math.inf
+
+    choice = near[0]
+    for r in near[1:]:
+        if width(r) > width(choice):
+            choice = r
     ci = _nu_ci(choice.fit)
     alts = [f for f in choice.minima[1:] if _acceptable(f) and _disjoint(_nu_ci(f), ci)]
-    for row in stable[1:]:
-        if row.model.n_params > choice.model.n_params + SPREAD_EXTRA_PARAMS:
+    for row in near:
+        if row is choice:
             continue
         ok = [f for f in (row.minima or [row.fit]) if _acceptable(f)]
         if ok and all(_disjoint(_nu_ci(f), ci) for f in ok):

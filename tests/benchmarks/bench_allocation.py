@@ -16,11 +16,14 @@ rehearsal row is charged; :mod:`sweepctl.kernel.rehearsal`).
 
 Both use the same *form rule* (how the slice's form is chosen each round):
 
-* ``stable``: the procedure's stable choice each round (``fit_slice``, the default);
-* ``frozen``: the stable choice of the first round that has one, then that form and
-  N_min for the rest of the campaign;
-* ``widest``: each round, of the stable forms with at most ``SPREAD_EXTRA_PARAMS`` more
-  parameters than the choice, the one with the widest linearised ν interval.
+* ``widest`` (the driver's, :func:`~sweepctl.campaign.allocate.fit_slice_branches`):
+  each round, of the stable forms with at most ``SPREAD_EXTRA_PARAMS`` more parameters
+  than the fewest-parameter one, the one with the widest linearised ν interval, and the
+  alternatives that disagree with it;
+* ``fewest``: the scan's stable choice each round (the fewest-parameter stable form),
+  no alternatives (the driver's rule before the measurement);
+* ``frozen``: the driver's choice of the first round that has one, then that form and
+  N_min for the rest of the campaign.
 
 Coverage: the fraction of seeds whose final linearised 95 % interval ν ± z₉₅σ holds the
 law's ν. Its binomial standard error is printed beside it.
@@ -32,7 +35,7 @@ tightened ``precision.target`` on the same store), and reports ν against [P1]
 tests/REFERENCES.md (ν = 2.593; small widths have corrections, so coverage there says
 more about the form than about the allocation).
 
-Run: ``python tests/benchmarks/bench_allocation.py [--seeds 50] [--rules stable]
+Run: ``python tests/benchmarks/bench_allocation.py [--seeds 50] [--rules widest]
 [--seed-offset 0] [--goal 0.05] [--processes 2] [--skip-network] [--network-seeds 3]``.
 Seeds used to choose a form rule must not be those reported: measure the rules with
 ``--seed-offset 1000`` and report with the default offset.
@@ -74,7 +77,6 @@ from sweepctl.campaign.summary import store_recipe
 from sweepctl.fss.fit import Fit, FitError, ScalingData, explore
 from sweepctl.fss.procedure import (
     DEFAULT_MAX_ORDERS,
-    SPREAD_EXTRA_PARAMS,
     stable_forms,
 )
 from sweepctl.fss.scan import P_ACCEPT, Z95
@@ -110,18 +112,32 @@ def _acceptable(f: Fit) -> bool:
     return f.p_value >= P_ACCEPT and not f.at_bound
 
 
-class StableRule:
-    """The procedure's stable choice each round and the alternatives that disagree with
-    it (what the driver does: :func:`~sweepctl.campaign.allocate.fit_slice_branches`)."""
+class WidestRule:
+    """What the driver does (:func:`~sweepctl.campaign.allocate.fit_slice_branches`): of
+    the stable forms near the fewest-parameter one, the widest ν interval, with the
+    alternatives that disagree with it."""
 
-    name = "stable"
+    name = "widest"
 
     def __call__(self, data: ScalingData, symmetric: bool):
         return fit_slice_branches(data, symmetric)
 
 
+class FewestRule:
+    """The scan's stable choice alone (the fewest-parameter stable form), no
+    alternatives: the rule before the form-rule measurement."""
+
+    name = "fewest"
+
+    def __call__(self, data: ScalingData, symmetric: bool) -> Fit | None:
+        if len(data.widths()) < 2:
+            return None
+        rows = stable_forms(data, symmetric, DEFAULT_MAX_ORDERS)
+        return rows[0].fit if rows else None
+
+
 class FrozenRule:
-    """The first stable choice, then that form and N_min only."""
+    """The driver's first choice, then that form and N_min only."""
 
     name = "frozen"
 
@@ -143,22 +159,7 @@ class FrozenRule:
         return (ok or minima)[0]
 
 
-class WidestRule:
-    """Of the stable forms near the choice, the one with the widest ν interval."""
-
-    name = "widest"
-
-    def __call__(self, data: ScalingData, symmetric: bool) -> Fit | None:
-        if len(data.widths()) < 2:
-            return None
-        rows = stable_forms(data, symmetric, DEFAULT_MAX_ORDERS)
-        if not rows:
-            return None
-        near = [r for r in rows if r.model.n_params <= rows[0].model.n_params + SPREAD_EXTRA_PARAMS]
-        return max(near, key=lambda r: r.fit.linear_error("nu")).fit
-
-
-RULES = {"stable": StableRule, "frozen": FrozenRule, "widest": WidestRule}
+RULES = {"widest": WidestRule, "fewest": FewestRule, "frozen": FrozenRule}
 
 
 # -- the two strategies in process -----------------------------------------------------
@@ -489,7 +490,7 @@ def main() -> None:
     ap.add_argument("--seeds", type=int, default=50)
     ap.add_argument("--seed-offset", type=int, default=0)
     ap.add_argument("--goal", type=float, default=0.05)
-    ap.add_argument("--rules", default="stable", help="comma-separated: stable,frozen,widest")
+    ap.add_argument("--rules", default="widest", help="comma-separated: widest,fewest,frozen")
     ap.add_argument("--processes", type=int, default=2)
     ap.add_argument(
         "--calibration",
@@ -522,7 +523,7 @@ def main() -> None:
                 f"goal half-width {args.network_goal}, nu reference {NU_REFERENCE} [P1]"
             )
             seeds = list(range(args.seed_offset, args.seed_offset + args.network_seeds))
-            rows = network_table(seeds, args.network_goal, "stable", Path(cal_path), cal)
+            rows = network_table(seeds, args.network_goal, "widest", Path(cal_path), cal)
             result["network"] = [
                 {
                     "strategy": s,
