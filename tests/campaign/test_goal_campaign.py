@@ -15,8 +15,8 @@ GOAL = {
     # self-dual (p = 0), so the slice is fitted with the symmetric forms
     "model": {"kind": "rehearsal", "nu": 2.6, "Gamma_c": 0.8, "F": [0.0, 0.85, 0.0, 0.02]}
     | {"noise": 0.5},
-    # three rounds after the first on this law and entropy (about 480 replicas)
-    "goal": {"nu_halfwidth": 0.02, "cpu_hours": 1.0},
+    # goal met after a few rounds on this law and entropy (3 allocation events when tuned)
+    "goal": {"nu_halfwidth": 0.06, "cpu_hours": 1.0},
 }
 
 
@@ -41,7 +41,10 @@ def test_a_goal_campaign_stores_the_same_replicas_when_cut_and_resumed(tmp_path)
     goal = json.loads(proc.stdout)["totals"]["goal"]
     assert goal["reason"] == "goal met" and goal["round"] == len(rounds)
     (sl,) = goal["slices"].values()
-    assert sl["halfwidth"] <= 0.02 and sl["nu"] == rounds[-1]["nu"]["pb=0.0|po=0.0|eps=1e-06"]
+    assert (
+        sl["halfwidth"] <= GOAL["goal"]["nu_halfwidth"]
+        and sl["nu"] == rounds[-1]["nu"]["pb=0.0|po=0.0|eps=1e-06"]
+    )
     proc = cli("status", whole, "--calibration", cal)
     assert "stopped: goal met" in proc.stdout and "nu = " in proc.stdout, proc.stdout
     # the replicas went where they inform ν, not everywhere
