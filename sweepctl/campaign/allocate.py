@@ -111,6 +111,10 @@ MIN_RELATIVE_GAIN = 1e-9
 #: χ² by which the data must separate an alternative's predictions from the choice's
 #: before it stops drawing replicas: 2σ on one degree of freedom each way, (2·z₉₅)²
 SEPARATION = (2.0 * Z95) ** 2
+#: rounds a campaign spends on separating alternatives once ν's half-width is within the
+#: goal: refits move both forms, so the linearised separation can chase them for ever
+#: (observed on the network kernel at N = 4–8, DEVELOPERS.md)
+SEPARATION_ROUNDS = 2
 
 
 @dataclass(frozen=True)
@@ -349,6 +353,7 @@ def allocate(
     budget_seconds: float,
     growth: float = GROWTH,
     margin: float = MARGIN,
+    separate: bool = True,
 ) -> Allocation:
     """Decide the next round of a campaign with a goal on ν (module docstring).
 
@@ -364,6 +369,10 @@ def allocate(
         CPU seconds the campaign may still spend (budget minus what is stored).
     growth, margin
         Round size limit and head-room (:data:`GROWTH`, :data:`MARGIN`).
+    separate
+        Spend replicas on separating alternatives (False: they neither draw replicas nor
+        keep a slice open; :class:`~sweepctl.campaign.progress.GoalRounds` gives up on
+        them after :data:`SEPARATION_ROUNDS` rounds).
 
     Returns
     -------
@@ -435,7 +444,7 @@ def allocate(
     goals_met = all(
         s.fit is not None
         and halfwidth[s.key] <= s.nu_halfwidth
-        and not designs[s.key].unseparated().any()
+        and not (separate and designs[s.key].unseparated().any())
         for s in slices
     )
 
@@ -449,7 +458,7 @@ def allocate(
         if s.key not in designs:
             continue
         d = designs[s.key]
-        if halfwidth[s.key] <= s.nu_halfwidth and not d.unseparated().any():
+        if halfwidth[s.key] <= s.nu_halfwidth and not (separate and d.unseparated().any()):
             continue
         rows = [s.points[i] for i in d.index]
         open_.append(
@@ -469,7 +478,8 @@ def allocate(
             var = d.var_nu()
             # ν's variance in units of the goal's, plus the separation of alternatives
             gains = d.gains() / aim if var > aim else np.zeros(count.size)
-            gains = gains + d.separation_gains()
+            if separate:
+                gains = gains + d.separation_gains()
             useful = (count < cap) & (gains > MIN_RELATIVE_GAIN * max(var / aim, 1.0))
             if not useful.any():
                 continue

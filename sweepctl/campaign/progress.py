@@ -227,6 +227,8 @@ class GoalRounds:
         self.round = 0
         #: why the campaign stopped (``allocate``'s reason), or None
         self.reason: str | None = None
+        #: rounds decided with every half-width within the goal but alternatives left
+        self.separation_rounds = 0
 
     def advance(self, progress: dict[str, PointProgress]) -> list[dict]:
         """Decide every round whose prefixes are complete; the decisions as events."""
@@ -257,12 +259,19 @@ class GoalRounds:
                     fit, alts = fit
                 slices.append(SliceState(key, tuple(pts), fit, self.goal.nu_halfwidth, tuple(alts)))
             spent = sum(p.replicas * p.replica_seconds for s in slices for p in s.points)
+            from sweepctl.campaign.allocate import SEPARATION_ROUNDS
+
             a = allocate(
                 slices,
                 target=self.target,
                 min_estimates=self.min_estimates,
                 budget_seconds=self.goal.cpu_hours * 3600.0 - spent,
+                separate=self.separation_rounds < SEPARATION_ROUNDS,
             )
+            if all(
+                s.fit is not None and a.halfwidth[s.key] <= s.nu_halfwidth for s in slices
+            ) and any(s.alternatives for s in slices):
+                self.separation_rounds += 1
             self.round += 1
             grown = {
                 pp.point.key: a.wanted[pp.point.key]

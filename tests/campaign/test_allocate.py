@@ -396,3 +396,30 @@ def test_a_separated_alternative_no_longer_draws_replicas(exact_points):
     far = dataclasses.replace(s, alternatives=(_branch(s.fit, 1.5),))
     a = allocate([far], target=TARGET, min_estimates=MIN_STRIPS, budget_seconds=1e9)
     assert a.reason == GOAL_MET
+
+
+def test_goal_rounds_give_up_separating_after_a_few_rounds():
+    # an alternative 1e-4 away in ν is never separated by data of this size (derived:
+    # D ∝ Δν², 4e-6 of the 0.05-apart branch's above); once the half-width is within
+    # the goal the rounds spend SEPARATION_ROUNDS rounds on it, then stop at the goal
+    from sweepctl.campaign.allocate import SEPARATION_ROUNDS
+    from sweepctl.campaign.progress import GoalRounds, build_progress
+
+    def shadowed(data, symmetric):
+        f = _even_fit(data, symmetric)
+        return f, (dataclasses.replace(f, theta=f.theta + 1e-4),)
+
+    recipe, frozen = _goal_campaign()
+    progress = build_progress(recipe, frozen, None)
+    rounds = GoalRounds(recipe, frozen, _price, shadowed)
+    decisions = []
+    while rounds.reason is None and len(decisions) < 30:
+        for pp in progress.values():
+            for r in pp.missing():
+                pp.done[r] = _replica(pp.point, r, EVEN)
+        decisions += rounds.advance(progress)
+    assert rounds.reason == GOAL_MET
+    key = next(iter(decisions[-1]["nu_halfwidth"]))
+    within = [d for d in decisions if d["nu_halfwidth"][key] <= 0.08]
+    assert len(within) == SEPARATION_ROUNDS + 1 and within[-1] is decisions[-1]
+    assert all(d["replicas"] for d in within[:-1]) and all(d["alternatives"][key] for d in within)
