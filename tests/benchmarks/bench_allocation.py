@@ -433,7 +433,7 @@ def _store_fit(store: Path, goal: float, rule: str, cal: list[dict]):
     return f, hw, cpu
 
 
-def network_table(seeds, goal, rule, cal_path: Path, cal, censor: float = 20.0) -> list:
+def network_table(seeds, goal, rule, cal_path: Path, cal, censor: float = 10.0) -> list:
     """Both strategies per seed through ``sweepctl run``; the uniform run is stopped
     (censored: its CPU is then a lower bound) once it has spent ``censor`` times the
     fit-aware run's CPU without reaching the goal."""
@@ -514,6 +514,12 @@ def main() -> None:
     ap.add_argument("--skip-network", action="store_true")
     ap.add_argument("--network-seeds", type=int, default=3)
     ap.add_argument("--network-goal", type=float, default=0.08)
+    ap.add_argument(
+        "--network-censor",
+        type=float,
+        default=10.0,
+        help="stop a uniform network run at this multiple of the fit-aware CPU",
+    )
     ap.add_argument("--json", type=Path, help="write the tables here as JSON")
     args = ap.parse_args()
     with tempfile.TemporaryDirectory() as tmp:
@@ -536,7 +542,9 @@ def main() -> None:
                 f"goal half-width {args.network_goal}, nu reference {NU_REFERENCE} [P1]"
             )
             seeds = list(range(args.seed_offset, args.seed_offset + args.network_seeds))
-            rows = network_table(seeds, args.network_goal, "widest", Path(cal_path), cal)
+            rows = network_table(
+                seeds, args.network_goal, "widest", Path(cal_path), cal, args.network_censor
+            )
             result["network"] = [
                 {
                     "strategy": s,
