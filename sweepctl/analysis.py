@@ -17,7 +17,7 @@ import pandas as pd
 
 from sweepctl.errors import SweepctlError
 from sweepctl.fss import procedure
-from sweepctl.fss.data import Slice, choose_slice, read_points, select, slices
+from sweepctl.fss.data import Slice, choose_slice, read_points, select, slice_points, slices
 from sweepctl.fss.fit import FitError, ScalingData
 from sweepctl.fss.model import Orders
 from sweepctl.fss.procedure import DEFAULT_MAX_ORDERS, DEFAULT_RESAMPLES, Outcome
@@ -270,6 +270,11 @@ def build_report(
             note = f"No fit: {exc}"
         s = rp.SliceReport(sl.label(), data, outcome, note=note)
         title = sl.label()
+        part = slice_points(df, sl)
+        if {"cpu_hours", "replicas"} <= set(part.columns):
+            s.points = part
+            s.cpu_plots = rp.plot_cpu_map(part, out, f"cpu_{sl.tag()}", f"{title}: CPU-hours")
+            all_plots += s.cpu_plots
         best = outcome.best if outcome is not None else None
         s.plots += rp.plot_gamma_vs_x(data, best, out, f"gamma_vs_x_{sl.tag()}", title)
         if best is not None:

@@ -296,6 +296,12 @@ def plan(
     pl = make_plan(rec, cost, origin, frozen, source=str(recipe))
     if preview is not None:
         pl["store"] = {"path": str(store), **preview.to_json()}
+    if rec.goal is not None:
+        from sweepctl.campaign.plan import freeze
+        from sweepctl.campaign.plan_store import goal_plan
+
+        with console.status("projecting the goal…") if not json_out else _null():
+            pl["goal"] = goal_plan(rec, frozen or freeze(rec, cost, None), store)
     if json_out:
         _print_json(pl)
         return
@@ -337,6 +343,8 @@ def plan(
     )
     console.print(f"seeds: {pl['seed_scheme']}")
     console.print(f"suggested: {pl['suggestion']}")
+    if rec.goal is not None:
+        _print_goal_plan(pl["goal"])
     if preview is not None:
         console.print(
             f"on {store}: {preview.stored_rows:,} replicas stored; a run would submit "
@@ -344,6 +352,33 @@ def plan(
             f"({len(preview.new_points)} new, {len(preview.reopened_points)} reopened by "
             "the recipe's target or cap), before any further rounds"
         )
+
+
+def _print_goal_plan(g: dict) -> None:
+    console.print(
+        f"goal: 95 % half-width of nu {g['nu_halfwidth']:g} per slice within "
+        f"{_hours(g['cpu_hours'])} of CPU",
+        highlight=False,
+    )
+    if g["pilot_cpu_hours"] is not None:
+        console.print(
+            f"  pilot round: {g['pilot_replicas']:,} replicas, {_hours(g['pilot_cpu_hours'])}",
+            highlight=False,
+        )
+    if g["projected_cpu_hours"] is not None:
+        console.print(
+            f"  projected to the goal: about {_hours(g['projected_cpu_hours'])} in all "
+            f"(linearised, from {g['basis']}; a refit can need more)",
+            highlight=False,
+        )
+    for k, sl in (g.get("slices") or {}).items():
+        if sl.get("nu") is None:
+            continue
+        hw = sl.get("halfwidth")
+        pm = f" ± {hw:.4f}" if hw is not None else ""
+        console.print(f"  {k}: nu = {sl['nu']:.4f}{pm} now ({sl['form']})", highlight=False)
+    if g.get("note"):
+        console.print(f"  {g['note']}", highlight=False)
 
 
 class _null:
@@ -885,6 +920,9 @@ def _goal_line(goal: dict) -> str:
     ]
     spent = goal["cpu_hours_spent"]
     tail = f"; {spent:.3g} CPU-hours spent" if spent is not None else ""
+    proj = goal.get("projected_cpu_hours")
+    if proj is not None and not goal["reason"]:
+        tail += f", about {proj:.3g} projected to the goal (linearised)"
     state = f"stopped: {goal['reason']}" if goal["reason"] else f"round {goal['round']}"
     return f"{head}; {state}{tail}" + ("; " + "; ".join(parts) if parts else "")
 
@@ -997,6 +1035,8 @@ def audit(
             "problems": list(rep.problems),
             "warnings": list(rep.warnings),
         }
+        if rep.allocation is not None:
+            doc["allocation"] = rep.allocation
         if sel is not None:
             doc["seed_trace"] = seed_trace(st, sel)
         if recompute_n:
@@ -1010,6 +1050,13 @@ def audit(
     console.print(
         f"integrity: {rep.files} files, {rep.rows} replica rows, {len(rep.problems)} problem(s)"
     )
+    if rep.allocation is not None:
+        a = rep.allocation
+        console.print(
+            f"allocation: {a['rounds_replayed']} round(s) replayed from the stored rows, "
+            f"{a['rounds_logged']} logged, {a['mismatches']} mismatch(es)",
+            highlight=False,
+        )
     for p in rep.problems:
         console.print(f"  problem: {p}", highlight=False)
     for w in rep.warnings:

@@ -166,6 +166,67 @@ def plot_effective(outcome: Outcome, out: Path, stem: str, title: str):
     return _save(fig, out, stem)
 
 
+def cpu_grid(part: pd.DataFrame) -> tuple[list[int], list[float], np.ndarray, np.ndarray]:
+    """CPU-hours and replica counts of one slice's points on the (N, x) grid (NaN where
+    the campaign has no point): widths, couplings, cpu[N, x], replicas[N, x]."""
+    widths = sorted(int(n) for n in part["N"].unique())
+    xs = sorted(float(x) for x in part["x"].unique())
+    cpu = np.full((len(widths), len(xs)), np.nan)
+    reps = np.full_like(cpu, np.nan)
+    for r in part.itertuples(index=False):
+        i, j = widths.index(int(r.N)), xs.index(float(r.x))
+        cpu[i, j] = float(r.cpu_hours)
+        reps[i, j] = float(r.replicas)
+    return widths, xs, cpu, reps
+
+
+def plot_cpu_map(part: pd.DataFrame, out: Path, stem: str, title: str) -> list[Path]:
+    """Heat map of the CPU-hours spent at each (N, x) of one slice, replica counts
+    written in the cells: where a campaign (with a goal, fit-aware) put its replicas."""
+    plt = _mpl()
+    widths, xs, cpu, reps = cpu_grid(part)
+    fig, ax = plt.subplots(figsize=(max(4.0, 0.55 * len(xs) + 2), 0.5 * len(widths) + 1.6))
+    im = ax.imshow(cpu, aspect="auto", origin="lower", cmap="magma_r")
+    ax.set_xticks(range(len(xs)), [f"{x:g}" for x in xs], rotation=90 if len(xs) > 12 else 0)
+    ax.set_yticks(range(len(widths)), [str(n) for n in widths])
+    if len(xs) * len(widths) <= 400:
+        top = np.nanmax(cpu) if np.isfinite(cpu).any() else 1.0
+        for i in range(len(widths)):
+            for j in range(len(xs)):
+                if np.isfinite(reps[i, j]):
+                    ax.text(j, i, f"{int(reps[i, j])}", ha="center", va="center", fontsize=7,
+                            color="white" if cpu[i, j] > 0.6 * top else "black")  # fmt: skip
+    ax.set_xlabel("x")
+    ax.set_ylabel("N")
+    ax.set_title(title)
+    fig.colorbar(im, ax=ax, label="CPU-hours")
+    return _save(fig, out, stem)
+
+
+def cpu_rows(part: pd.DataFrame) -> list[list[str]]:
+    """Per width: replicas, CPU-hours and share of the slice's CPU, and the couplings
+    that took the most CPU."""
+    widths, xs, cpu, reps = cpu_grid(part)
+    total = float(np.nansum(cpu))
+    rows = []
+    for i, n in enumerate(widths):
+        c = float(np.nansum(cpu[i]))
+        top = [xs[j] for j in np.argsort(-np.nan_to_num(cpu[i], nan=-1.0))[:2]]
+        rows.append(
+            [
+                str(n),
+                str(int(np.nansum(reps[i]))),
+                f"{c:.4g}",
+                f"{100 * c / total:.0f} %" if total > 0 else "—",
+                ", ".join(f"{x:g}" for x in top),
+            ]
+        )
+    return rows
+
+
+CPU_HEAD = ["N", "replicas", "CPU-hours", "share", "dearest x"]
+
+
 def plot_gamma_vs_epsilon(df: pd.DataFrame, out: Path, stem: str, title: str):
     """Γ against ε per width, at the coupling nearest x = 0 (log ε axis)."""
     plt = _mpl()
@@ -202,6 +263,9 @@ class SliceReport:
     outcome: Outcome | None
     plots: list[Path] = field(default_factory=list)
     note: str = ""
+    #: the slice's per-point table (N, x, replicas, cpu_hours) when it came from a store
+    points: pd.DataFrame | None = None
+    cpu_plots: list[Path] = field(default_factory=list)
 
 
 def _num(z):
@@ -575,6 +639,18 @@ def write_report(
         for p in s.plots:
             if p.suffix == ".png":
                 blocks.append(("img", p.name))
+        if s.points is not None and "cpu_hours" in s.points.columns:
+            blocks.append(
+                (
+                    "p",
+                    "Where the CPU went: CPU-hours at each (N, x) of this slice, replica "
+                    "counts in the cells.",
+                )
+            )
+            blocks.append(("table", (CPU_HEAD, cpu_rows(s.points))))
+            for p in s.cpu_plots:
+                if p.suffix == ".png":
+                    blocks.append(("img", p.name))
     blocks.append(("h2", "Regularisation ε"))
     if not flat_rows:
         blocks.append(("p", "The campaign has one ε value; no flatness check is possible."))

@@ -40,6 +40,20 @@ sample variance also with disorder.
 A slice without a fit (too few data for any acceptable form) grows uniformly, each
 point by ``growth − 1`` times its replicas: a longer pilot.
 
+Ambiguous slices
+----------------
+While the slice's data cannot decide ν — another acceptable minimum of the chosen form
+(a branch), or the best acceptable minimum of another stable form with at most
+``SPREAD_EXTRA_PARAMS`` more parameters, has a linearised 95 % ν interval that misses
+the choice's (the linearised counterpart of the procedure's ``ambiguous``,
+:mod:`sweepctl.fss.procedure`) — the next replicas also go where the alternatives'
+predictions F_a differ from the choice's. One replica at i raises the χ² by which the
+data separate alternative a from the choice, D_a = Σ_i (ΔF_ia/σ_i)², by c_i ΔF_ia²; the
+score per CPU-second adds Σ_a c_i ΔF_ia² / :data:`SEPARATION` over the alternatives not
+yet separated (projected D_a < :data:`SEPARATION`). A slice with an unseparated
+alternative is open even when its half-width is within the goal, so "goal met" needs an
+unambiguous slice.
+
 The floor
 ---------
 A point whose relative error misses ``precision.target`` (or that has fewer than the
@@ -64,8 +78,8 @@ import numpy as np
 from sweepctl.campaign.plan import next_target
 from sweepctl.campaign.recipe import Point
 from sweepctl.fss.fit import Fit, ScalingData, jacobian
-from sweepctl.fss.procedure import DEFAULT_MAX_ORDERS, stable_forms
-from sweepctl.fss.scan import Z95
+from sweepctl.fss.procedure import DEFAULT_MAX_ORDERS, SPREAD_EXTRA_PARAMS, stable_forms
+from sweepctl.fss.scan import P_ACCEPT, Z95
 
 __all__ = [
     "BUDGET_SPENT",
@@ -77,6 +91,7 @@ __all__ = [
     "SliceState",
     "allocate",
     "fit_slice",
+    "fit_slice_branches",
     "slice_data",
 ]
 
@@ -93,6 +108,13 @@ GROWTH = 2.0
 #: a replica that lowers Var(ν) by less than this fraction changes nothing measurable
 #: (rounding in the rank-one update is ~1e-13 for a well-conditioned I)
 MIN_RELATIVE_GAIN = 1e-9
+#: χ² by which the data must separate an alternative's predictions from the choice's
+#: before it stops drawing replicas: 2σ on one degree of freedom each way, (2·z₉₅)²
+SEPARATION = (2.0 * Z95) ** 2
+#: rounds a campaign spends on separating alternatives once ν's half-width is within the
+#: goal: refits move both forms, so the linearised separation can chase them for ever
+#: (observed on the network kernel at N = 4–8, DEVELOPERS.md)
+SEPARATION_ROUNDS = 2
 
 
 @dataclass(frozen=True)
@@ -136,6 +158,9 @@ class SliceState:
     points: tuple[PointState, ...]
     fit: Fit | None
     nu_halfwidth: float
+    #: fits whose ν disagrees with ``fit``'s (branches, other stable forms): while there
+    #: are any, replicas also go where their predictions differ (module docstring)
+    alternatives: tuple[Fit, ...] = ()
 
 
 #: largest orders the allocator's form choice scans (those of ``sweepctl fit``)
@@ -143,16 +168,67 @@ MAX_ORDERS = DEFAULT_MAX_ORDERS
 
 
 def fit_slice(data: ScalingData, symmetric: bool) -> Fit | None:
-    """The slice's fit the allocator linearises: the procedure's stable choice
-    (:func:`sweepctl.fss.procedure.stable_forms`: every form up to :data:`MAX_ORDERS` at
-    every N_min, as ``sweepctl fit`` scans), or None when no form is stable yet.
+    """The slice's fit the allocator linearises (:func:`fit_slice_branches`), or None
+    when no form is stable yet."""
+    return fit_slice_branches(data, symmetric)[0]
 
-    Deterministic (fixed design seeds), so a replay of the rounds fits the same form.
+
+def _nu_ci(f: Fit) -> tuple[float, float]:
+    nu, s = f.values()["nu"], f.linear_error("nu")
+    s = s if math.isfinite(s) else 0.0
+    return (nu - Z95 * s, nu + Z95 * s)
+
+
+def _disjoint(a: tuple[float, float], b: tuple[float, float]) -> bool:
+    return max(a[0], b[0]) > min(a[1], b[1])
+
+
+def fit_slice_branches(data: ScalingData, symmetric: bool) -> tuple[Fit | None, tuple[Fit, ...]]:
+    """The fit the allocator linearises and the alternatives that disagree with it.
+
+    The form rule: of the stable forms (:func:`sweepctl.fss.procedure.stable_forms`, the
+    scan of ``sweepctl fit`` up to :data:`MAX_ORDERS` at every N_min) with at most
+    ``SPREAD_EXTRA_PARAMS`` more parameters than the fewest-parameter one — the forms
+    whose spread the procedure reports beside its interval — the one with the widest
+    linearised ν interval (the first of equals in the scan's order). Steering by the
+    fewest-parameter form alone let a truncated form's bias through: on the rehearsal
+    law with a ρ⁴ term it put the replicas where that form is most wrong, and its ν
+    intervals covered the law's ν less often than uniform precision did
+    (tests/benchmarks/bench_allocation.py, DEVELOPERS.md).
+
+    Alternatives (module docstring, "Ambiguous slices"): other acceptable minima of the
+    chosen form, and the best acceptable minimum of each of those stable forms none of
+    whose acceptable minima overlaps the choice's ν interval. Deterministic (fixed
+    design seeds), so a replay of the rounds fits the same forms.
     """
     if len(data.widths()) < 2:
-        return None
+        return None, ()
     stable = stable_forms(data, symmetric, MAX_ORDERS)
-    return stable[0].fit if stable else None
+    if not stable:
+        return None, ()
+    near = [r for r in stable if r.model.n_params <= stable[0].model.n_params + SPREAD_EXTRA_PARAMS]
+
+    def width(r) -> float:
+        e = r.fit.linear_error("nu")
+        return e if math.isfinite(e) else -math.inf
+
+    choice = near[0]
+    for r in near[1:]:
+        if width(r) > width(choice):
+            choice = r
+    ci = _nu_ci(choice.fit)
+    alts = [f for f in choice.minima[1:] if _acceptable(f) and _disjoint(_nu_ci(f), ci)]
+    for row in near:
+        if row is choice:
+            continue
+        ok = [f for f in (row.minima or [row.fit]) if _acceptable(f)]
+        if ok and all(_disjoint(_nu_ci(f), ci) for f in ok):
+            alts.append(ok[0])
+    return choice.fit, tuple(alts)
+
+
+def _acceptable(f: Fit) -> bool:
+    return f.p_value >= P_ACCEPT and not f.at_bound
 
 
 def slice_data(points: tuple[PointState, ...] | list[PointState]) -> ScalingData:
@@ -201,6 +277,15 @@ class SliceDesign:
         self.nu = fit.model.nonlinear_names().index("nu")
         info = (self.J * (self.strips * self.per_strip)[:, None]).T @ self.J
         self.cov = np.linalg.pinv(info, hermitian=True)
+        #: ΔF_ia = F_a − F of each alternative a at each row, and D_a = Σ_i (ΔF_ia/σ_i)²
+        base = fit.model.evaluate(fit.theta, fit.f, x, n)
+        cols = []
+        for alt in slice_.alternatives:
+            with np.errstate(all="ignore"):
+                d = alt.model.evaluate(alt.theta, alt.f, x, n) - base
+            cols.append(np.where(np.isfinite(d), d, 0.0))
+        self.delta = np.column_stack(cols) if cols else np.zeros((x.size, 0))
+        self.separation = (self.delta**2 * (self.strips * self.per_strip)[:, None]).sum(axis=0)
 
     def var_nu(self) -> float:
         """Var(ν) = [(JᵀWJ)⁻¹]_νν of the current design."""
@@ -218,12 +303,25 @@ class SliceDesign:
         h = np.einsum("ij,ij->i", a, self.J)
         return c * g * g / (1.0 + c * h)
 
+    def unseparated(self) -> np.ndarray:
+        """Alternatives the data do not yet separate from the choice (D_a < SEPARATION)."""
+        return self.separation < SEPARATION
+
+    def separation_gains(self) -> np.ndarray:
+        """Σ_a c_i ΔF_ia² / SEPARATION over the unseparated alternatives, per row."""
+        open_ = self.unseparated()
+        if not open_.any():
+            return np.zeros(self.J.shape[0])
+        c = self.per_replica * self.per_strip
+        return c * (self.delta[:, open_] ** 2).sum(axis=1) / SEPARATION
+
     def add(self, row: int, replicas: int = 1) -> None:
-        """Update I⁻¹ for ``replicas`` more replicas at ``row`` (rank one)."""
+        """Update I⁻¹ (rank one) and the separations for ``replicas`` more at ``row``."""
         c = replicas * self.per_replica[row] * self.per_strip[row]
         u = self.cov @ self.J[row]
         self.cov -= np.outer(u, u) * (c / (1.0 + c * float(self.J[row] @ u)))
         self.strips[row] += replicas * self.per_replica[row]
+        self.separation += c * self.delta[row] ** 2
 
 
 @dataclass
@@ -255,6 +353,7 @@ def allocate(
     budget_seconds: float,
     growth: float = GROWTH,
     margin: float = MARGIN,
+    separate: bool = True,
 ) -> Allocation:
     """Decide the next round of a campaign with a goal on ν (module docstring).
 
@@ -270,6 +369,10 @@ def allocate(
         CPU seconds the campaign may still spend (budget minus what is stored).
     growth, margin
         Round size limit and head-room (:data:`GROWTH`, :data:`MARGIN`).
+    separate
+        Spend replicas on separating alternatives (False: they neither draw replicas nor
+        keep a slice open; :class:`~sweepctl.campaign.progress.GoalRounds` gives up on
+        them after :data:`SEPARATION_ROUNDS` rounds).
 
     Returns
     -------
@@ -292,7 +395,11 @@ def allocate(
         if want <= p.replicas:
             continue
         floor_met = False
-        afford = int(left // p.replica_seconds) if p.replica_seconds > 0 else want
+        afford = (
+            int(left // p.replica_seconds)
+            if p.replica_seconds > 0 and math.isfinite(left)
+            else want
+        )
         add = min(want - p.replicas, afford)
         short_of_budget = short_of_budget or add < want - p.replicas
         wanted[p.point.key] += add
@@ -309,7 +416,11 @@ def allocate(
                 math.ceil((growth - 1.0) * p.replicas),
                 p.max_replicas - wanted[p.point.key],
             )
-            afford = int(left // p.replica_seconds) if p.replica_seconds > 0 else add
+            afford = (
+                int(left // p.replica_seconds)
+                if p.replica_seconds > 0 and math.isfinite(left)
+                else add
+            )
             short_of_budget = short_of_budget or afford < add
             add = max(0, min(add, afford))
             wanted[p.point.key] += add
@@ -330,16 +441,25 @@ def allocate(
             if extra:
                 d.add(row, extra)
         designs[s.key] = d
-    goals_met = all(s.fit is not None and halfwidth[s.key] <= s.nu_halfwidth for s in slices)
+    goals_met = all(
+        s.fit is not None
+        and halfwidth[s.key] <= s.nu_halfwidth
+        and not (separate and designs[s.key].unseparated().any())
+        for s in slices
+    )
 
-    round_limit = max((growth - 1.0) * sum(p.replicas * p.replica_seconds for p in points), spent)
+    prefix_cpu = sum(p.replicas * p.replica_seconds for p in points)
+    # growth = inf: no round limit (a projection to the goal, not a round)
+    round_limit = math.inf if math.isinf(growth) else max((growth - 1.0) * prefix_cpu, spent)
     # slices still short of their goal, each with its rows' keys, costs, counts and caps
     open_: list[tuple[str, SliceDesign, float, list[str], np.ndarray, np.ndarray, np.ndarray]]
     open_ = []
     for s in slices:
-        if s.key not in designs or halfwidth[s.key] <= s.nu_halfwidth:
+        if s.key not in designs:
             continue
         d = designs[s.key]
+        if halfwidth[s.key] <= s.nu_halfwidth and not (separate and d.unseparated().any()):
+            continue
         rows = [s.points[i] for i in d.index]
         open_.append(
             (
@@ -356,17 +476,18 @@ def allocate(
         best = None  # (score, position in open_, row)
         for j, (_, d, aim, _, cost, count, cap) in enumerate(open_):
             var = d.var_nu()
-            if var <= aim:
-                continue
-            gains = d.gains()
-            useful = (count < cap) & (gains > MIN_RELATIVE_GAIN * var)
+            # ν's variance in units of the goal's, plus the separation of alternatives
+            gains = d.gains() / aim if var > aim else np.zeros(count.size)
+            if separate:
+                gains = gains + d.separation_gains()
+            useful = (count < cap) & (gains > MIN_RELATIVE_GAIN * max(var / aim, 1.0))
             if not useful.any():
                 continue
             ok = useful & (cost <= left)
             short_of_budget = short_of_budget or bool((useful & ~ok).any())
             if not ok.any():
                 continue
-            score = np.where(ok, gains / (aim * cost), -np.inf)
+            score = np.where(ok, gains / cost, -np.inf)
             row = int(np.argmax(score))  # the first of equals: key order
             if best is None or score[row] > best[0]:
                 best = (float(score[row]), j, row)

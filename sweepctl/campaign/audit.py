@@ -22,7 +22,14 @@ from sweepctl.campaign.store import (
 from sweepctl.campaign.summary import store_recipe
 from sweepctl.errors import SweepctlError
 
-__all__ = ["AuditReport", "audit_store", "parse_selector", "recompute", "seed_trace"]
+__all__ = [
+    "AuditReport",
+    "audit_store",
+    "parse_selector",
+    "recompute",
+    "replay_allocations",
+    "seed_trace",
+]
 
 _PROVENANCE = (
     "worker",
@@ -46,6 +53,9 @@ class AuditReport:
     warnings: list[str] = field(default_factory=list)
     duplicates: list[Duplicate] = field(default_factory=list)
     recomputed: list[dict] = field(default_factory=list)
+    #: with a goal: the replay of the campaign's rounds against its ``allocation`` events
+    #: (``rounds_logged``, ``rounds_replayed``, ``mismatches``), else None
+    allocation: dict | None = None
 
     @property
     def ok(self) -> bool:
@@ -136,7 +146,88 @@ def audit_store(store: Store) -> AuditReport:
                     n_bad += 1
     if n_bad:
         rep.warnings.append(f"events.jsonl: {n_bad} unparsable line(s)")
+    if readable:
+        replay_allocations(store, rep)
     return rep
+
+
+#: fields of an ``allocation`` event a replay must reproduce exactly, and those compared
+#: to rounding (floats from fits, in case the replaying machine's BLAS rounds otherwise)
+_EXACT = ("reason", "forms", "replicas")
+_CLOSE = ("nu", "nu_halfwidth", "projected_halfwidth", "cpu_seconds_spent", "cpu_seconds_round")
+
+
+def replay_allocations(store: Store, rep: AuditReport) -> None:
+    """Replay a goal campaign's rounds from the stored rows and compare them with the
+    logged ``allocation`` events (decisions are a pure function of complete prefixes,
+    :class:`~sweepctl.campaign.progress.GoalRounds`); mismatches are problems.
+
+    Also a problem: a replica stored beyond what the decisions asked for, and a round
+    logged that the stored rows cannot reach. The replay uses the latest recipe; a
+    round decided under an earlier goal is compared with what the current one decides.
+    """
+    from sweepctl.campaign.progress import GoalRounds, build_progress, replica_price
+
+    _, recipe, frozen = store_recipe(store)
+    if recipe.goal is None:
+        return
+    rows = store.read_replicas(columns=["point_key", "replica", "gamma_strips"])
+    progress = build_progress(recipe, frozen, rows)
+    if any(frozen.price_for(pp.point) is None for pp in progress.values()):
+        rep.warnings.append(
+            "allocation events not replayed: the store has no frozen replica prices "
+            "(made before they were frozen, or never run with a calibration)"
+        )
+        return
+    rounds = GoalRounds(recipe, frozen, lambda pp: replica_price(frozen, None, pp))
+    replayed = {d["round"]: d for d in rounds.advance(progress)}
+    logged: dict[int, list[dict]] = {}
+    for e in store.read_events():
+        if e.get("event") == "allocation" and isinstance(e.get("round"), int):
+            logged.setdefault(e["round"], []).append(e)
+    bad: list[str] = []
+    for r in sorted(logged):
+        want = replayed.get(r)
+        for e in logged[r]:
+            if want is None:
+                bad.append(
+                    f"allocation round {r} is logged but the stored rows replay only to "
+                    f"round {max(replayed, default=0)} (rows of its prefixes are missing)"
+                )
+                break
+            diff = [k for k in _EXACT if e.get(k) != want[k]]
+            diff += [k for k in _CLOSE if not _close(e.get(k), want[k])]
+            if diff:
+                bad.append(
+                    f"allocation round {r}: the logged {', '.join(diff)} differ from the "
+                    "replay of the stored rows"
+                )
+    for r in sorted(set(replayed) - set(logged)):
+        rep.warnings.append(
+            f"allocation round {r} replays but is not logged yet (the next run logs it)"
+        )
+    for key, pp in sorted(progress.items()):
+        extra = sorted(i for i in pp.done if i >= pp.wanted)
+        if extra:
+            bad.append(
+                f"{key}: replica(s) {', '.join(map(str, extra[:5]))} stored but no decision "
+                f"asked for more than {pp.wanted}"
+            )
+    rep.problems += bad
+    rep.allocation = {
+        "rounds_logged": len(logged),
+        "rounds_replayed": len(replayed),
+        "reason": rounds.reason,
+        "mismatches": len(bad),
+    }
+
+
+def _close(a, b) -> bool:
+    if isinstance(a, dict) and isinstance(b, dict):
+        return a.keys() == b.keys() and all(_close(a[k], b[k]) for k in a)
+    if isinstance(a, (int, float)) and isinstance(b, (int, float)):
+        return abs(a - b) <= 1e-9 * max(abs(a), abs(b), 1e-300)
+    return a == b
 
 
 def parse_selector(text: str) -> dict[str, float]:

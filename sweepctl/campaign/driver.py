@@ -39,7 +39,13 @@ from sweepctl.campaign.plan import (
     freeze,
     slice_key,
 )
-from sweepctl.campaign.progress import GoalRounds, PointProgress, RunPreview, preview_run
+from sweepctl.campaign.progress import (
+    GoalRounds,
+    PointProgress,
+    RunPreview,
+    preview_run,
+    replica_price,
+)
 from sweepctl.campaign.recipe import Recipe
 from sweepctl.campaign.store import CONVENTIONS, Store, StoreError, code_version
 
@@ -302,14 +308,16 @@ class Driver:
         return preview
 
     def _price(self, pp: PointProgress) -> float:
-        """CPU seconds of one replica of ``pp`` by the cost model (goal rounds and their
-        budget: a price, not a measured time, so decisions do not depend on timing)."""
-        if self.cost is None:
+        """CPU seconds of one replica of ``pp`` (goal rounds and their budget): the price
+        frozen with the store, so decisions depend neither on timing nor on the machine
+        a resume runs on; the cost model's for stores made before prices were frozen."""
+        v = replica_price(self.frozen, self.cost, pp)
+        if v is None:
             raise StoreError(
                 "a goal on nu spends its CPU budget by the cost model's prices, which need a "
                 "kernel calibration: give --calibration FILE (from `sweepctl bench --out FILE`)"
             )
-        return self.cost.replica_seconds(pp.point, pp.layers, pp.warmup, self.frozen.strips)
+        return v
 
     def _log_replayed_decisions(self) -> None:
         """Log the replay's decisions that no earlier run logged (a run cut between its
@@ -407,13 +415,15 @@ class Driver:
         """A rehearsal replica's price on the network kernel (what its row is charged)."""
         if self._rehearsal is None:
             return None
-        if self.cost is None:
+        # with a goal, the frozen price: the rows are charged what the budget counted
+        v = replica_price(self.frozen, self.cost, pp)
+        if v is None:
             raise StoreError(
                 "a rehearsal campaign charges each replica what the network kernel would "
                 "spend, which needs a kernel calibration: give --calibration FILE "
                 "(from `sweepctl bench --out FILE`)"
             )
-        return self.cost.replica_seconds(pp.point, pp.layers, pp.warmup, self.frozen.strips)
+        return v
 
     def result(self, fut) -> None:
         """A replica came back: buffer its row, advance its point's rounds."""

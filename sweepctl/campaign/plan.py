@@ -96,6 +96,11 @@ class Frozen:
     #: what computes a replica: ``{"kind": "network"}`` or the rehearsal law
     #: (:meth:`~sweepctl.kernel.rehearsal.RehearsalModel.to_dict`); never changes
     model: dict = field(default_factory=lambda: {"kind": "network"})
+    #: with a goal on ν: CPU seconds of one replica per point key, priced once by the
+    #: calibration in use when the point first appears and kept, so that the goal rounds
+    #: and their budget decide the same on any machine (the price depends on the
+    #: coupling too, through the QR schedule, hence per point)
+    replica_prices: dict[str, float] = field(default_factory=dict)
 
     def rehearsal(self) -> RehearsalModel | None:
         """The rehearsal law, or None for the network kernel."""
@@ -121,6 +126,11 @@ class Frozen:
 
     def max_replicas(self, point: Point) -> int:
         return max(1, self.cap_for(point) // self.layers_for(point))
+
+    def price_for(self, point: Point) -> float | None:
+        """The frozen CPU seconds of one replica at ``point``, or None if none is frozen."""
+        v = self.replica_prices.get(point.key)
+        return None if v is None else float(v)
 
     def min_replicas(self) -> int:
         """Replicas needed for :attr:`min_strip_estimates` strip values."""
@@ -150,6 +160,8 @@ class Frozen:
             min_strip_estimates=int(d.get("min_strip_estimates", 0)),
             # stores made before models could be chosen ran the network kernel
             model=d.get("model") or {"kind": "network"},
+            # stores made before frozen prices priced each decision with the calibration
+            replica_prices={k: float(v) for k, v in (d.get("replica_prices") or {}).items()},
         )
 
 
@@ -179,11 +191,12 @@ def freeze(
 ) -> Frozen:
     """Frozen settings for ``recipe``: new slices are added, existing ones kept.
 
-    Replica lengths never change once frozen. Caps follow the recipe: when its
-    ``max_layers`` / ``max_cpu_hours`` differ from what the store recorded, every cap
-    is derived again (so a raised cap reopens capped points), otherwise the recorded
-    conversion is kept. ``default_seconds`` is the replica duration used when the
-    recipe names none (a batch profile passes a fraction of its walltime).
+    Replica lengths never change once frozen, nor (with a goal) replica prices. Caps
+    follow the recipe: when its ``max_layers`` / ``max_cpu_hours`` differ from what the
+    store recorded, every cap is derived again (so a raised cap reopens capped points),
+    otherwise the recorded conversion is kept. ``default_seconds`` is the replica
+    duration used when the recipe names none (a batch profile passes a fraction of its
+    walltime).
     """
     if previous is None:
         entropy = recipe.entropy if recipe.entropy is not None else secrets.randbits(128)
@@ -230,6 +243,12 @@ def freeze(
                 f"an error bar needs; allow at least {need:_} layers per point",
                 source,
             )
+    if recipe.goal is not None and cost is not None:
+        for p in recipe.points():
+            if p.key not in fz.replica_prices:
+                fz.replica_prices[p.key] = cost.replica_seconds(
+                    p, fz.layers_for(p), fz.warmup_for(p.width), fz.strips
+                )
     return fz
 
 

@@ -29,6 +29,7 @@ __all__ = [
     "build_progress",
     "fit_slice_key",
     "preview_run",
+    "replica_price",
 ]
 
 
@@ -180,6 +181,17 @@ def preview_run(
     )
 
 
+def replica_price(frozen: Frozen, cost, pp: PointProgress) -> float | None:
+    """CPU seconds of one replica of ``pp``'s point: the frozen price (goal campaigns),
+    else the cost model's (``cost`` may be None: then None)."""
+    v = frozen.price_for(pp.point)
+    if v is not None:
+        return v
+    if cost is None:
+        return None
+    return float(cost.replica_seconds(pp.point, pp.layers, pp.warmup, frozen.strips))
+
+
 def fit_slice_key(point: Point) -> str:
     """Key of the point's disorder/ε slice: the points one scaling fit (and one goal) covers."""
     return f"pb={point.p_block!r}|po={point.p_open!r}|eps={point.epsilon!r}"
@@ -188,9 +200,11 @@ def fit_slice_key(point: Point) -> str:
 class GoalRounds:
     """Campaign-wide rounds of a recipe with a goal (module docstring).
 
-    ``price(pp)`` is the CPU seconds of one replica of ``pp``'s point (the cost model's,
-    never a measured time: decisions must not depend on timing); ``fitter(data,
-    symmetric)`` the slice fit (:func:`~sweepctl.campaign.allocate.fit_slice`).
+    ``price(pp)`` is the CPU seconds of one replica of ``pp``'s point (the frozen or the
+    cost model's price, never a measured time: decisions must not depend on timing);
+    ``fitter(data, symmetric)`` the slice fit, a :class:`~sweepctl.fss.fit.Fit` (or None)
+    or a pair (fit, alternatives) as
+    :func:`~sweepctl.campaign.allocate.fit_slice_branches` returns (the default).
     """
 
     def __init__(
@@ -200,7 +214,7 @@ class GoalRounds:
         price: Callable[[PointProgress], float],
         fitter: Callable | None = None,
     ) -> None:
-        from sweepctl.campaign.allocate import fit_slice
+        from sweepctl.campaign.allocate import fit_slice_branches
 
         if recipe.goal is None:
             raise ValueError("goal rounds need a recipe with [goal]")
@@ -208,11 +222,13 @@ class GoalRounds:
         self.target = recipe.target
         self.min_estimates = frozen.min_strip_estimates
         self.price = price
-        self.fitter = fitter or fit_slice
+        self.fitter = fitter or fit_slice_branches
         #: rounds decided so far (round 0 is every point's first round)
         self.round = 0
         #: why the campaign stopped (``allocate``'s reason), or None
         self.reason: str | None = None
+        #: rounds decided with every half-width within the goal but alternatives left
+        self.separation_rounds = 0
 
     def advance(self, progress: dict[str, PointProgress]) -> list[dict]:
         """Decide every round whose prefixes are complete; the decisions as events."""
@@ -238,15 +254,24 @@ class GoalRounds:
             slices = []
             for key, pts in sorted(by_slice.items()):
                 symmetric = pts[0].point.p_block == pts[0].point.p_open
-                fit = self.fitter(slice_data(pts), symmetric)
-                slices.append(SliceState(key, tuple(pts), fit, self.goal.nu_halfwidth))
+                fit, alts = self.fitter(slice_data(pts), symmetric), ()
+                if isinstance(fit, tuple):
+                    fit, alts = fit
+                slices.append(SliceState(key, tuple(pts), fit, self.goal.nu_halfwidth, tuple(alts)))
             spent = sum(p.replicas * p.replica_seconds for s in slices for p in s.points)
+            from sweepctl.campaign.allocate import SEPARATION_ROUNDS
+
             a = allocate(
                 slices,
                 target=self.target,
                 min_estimates=self.min_estimates,
                 budget_seconds=self.goal.cpu_hours * 3600.0 - spent,
+                separate=self.separation_rounds < SEPARATION_ROUNDS,
             )
+            if all(
+                s.fit is not None and a.halfwidth[s.key] <= s.nu_halfwidth for s in slices
+            ) and any(s.alternatives for s in slices):
+                self.separation_rounds += 1
             self.round += 1
             grown = {
                 pp.point.key: a.wanted[pp.point.key]
@@ -264,6 +289,14 @@ class GoalRounds:
                         s.key: None if s.fit is None else s.fit.model.describe() for s in slices
                     },
                     "nu": {s.key: None if s.fit is None else s.fit.values()["nu"] for s in slices},
+                    # fits whose ν disagrees with the choice's (branches, other forms)
+                    "alternatives": {
+                        s.key: [
+                            {"form": f.model.describe(), "nu": f.values()["nu"]}
+                            for f in s.alternatives
+                        ]
+                        for s in slices
+                    },
                     "nu_halfwidth": {k: _finite(v) for k, v in a.halfwidth.items()},
                     "projected_halfwidth": {k: _finite(v) for k, v in a.projected.items()},
                     "replicas": grown,
@@ -281,3 +314,82 @@ class GoalRounds:
 
 def _finite(v: float) -> float | None:
     return float(v) if math.isfinite(v) else None
+
+
+def project_goal(
+    recipe: Recipe,
+    frozen: Frozen,
+    progress: dict[str, PointProgress],
+    price: Callable[[PointProgress], float],
+    fitter: Callable | None = None,
+) -> dict:
+    """CPU to reach the goal from the stored rows: the linearised projection.
+
+    Every point's longest complete stored prefix is fitted per slice (the goal rounds'
+    fitter) and :func:`~sweepctl.campaign.allocate.allocate` is asked, without the
+    round limit, for the replicas that bring each slice's linearised half-width within
+    its goal. The projection trusts the fitted form: a later round can refit another
+    form, or find branches, and need more. ``projected_cpu_hours`` is None while a slice
+    has no stable form (its rounds grow uniformly until one is found).
+    """
+    from sweepctl.campaign.allocate import (
+        PointState,
+        SliceState,
+        allocate,
+        fit_slice_branches,
+        slice_data,
+    )
+
+    if recipe.goal is None:
+        raise ValueError("a projection needs a recipe with [goal]")
+    fitter = fitter or fit_slice_branches
+    by_slice: dict[str, list[PointState]] = {}
+    for pp in sorted(progress.values(), key=lambda q: q.point.key):
+        if pp.failed:
+            continue
+        n = 0
+        while n in pp.done:
+            n += 1
+        by_slice.setdefault(fit_slice_key(pp.point), []).append(
+            PointState(
+                point=pp.point,
+                prefix=tuple(pp.done[r] for r in range(n)),
+                replica_seconds=float(price(pp)),
+                max_replicas=pp.max_replicas,
+            )
+        )
+    slices, out_slices = [], {}
+    for key, pts in sorted(by_slice.items()):
+        symmetric = pts[0].point.p_block == pts[0].point.p_open
+        fit, alts = None, ()
+        if all(p.replicas >= 1 for p in pts):
+            fit = fitter(slice_data(pts), symmetric)
+            if isinstance(fit, tuple):
+                fit, alts = fit
+        slices.append(SliceState(key, tuple(pts), fit, recipe.goal.nu_halfwidth, tuple(alts)))
+        out_slices[key] = {
+            "form": None if fit is None else fit.model.describe(),
+            "nu": None if fit is None else fit.values()["nu"],
+            "alternatives": len(alts),
+        }
+    spent = sum(p.replicas * p.replica_seconds for s in slices for p in s.points)
+    out = {
+        "cpu_hours_spent": spent / 3600.0,
+        "projected_cpu_hours": None,
+        "slices": out_slices,
+    }
+    if any(s.fit is None for s in slices):
+        return out
+    a = allocate(
+        slices,
+        target=recipe.target,
+        min_estimates=frozen.min_strip_estimates,
+        budget_seconds=math.inf,
+        growth=math.inf,
+    )
+    for s in slices:
+        out_slices[s.key]["halfwidth"] = _finite(a.halfwidth[s.key])
+        out_slices[s.key]["projected_halfwidth"] = _finite(a.projected[s.key])
+    out["projected_cpu_hours"] = (spent + a.seconds) / 3600.0
+    out["reason"] = a.reason
+    return out

@@ -10,7 +10,7 @@ import pandas as pd
 
 from sweepctl.campaign.cost import CostModel
 from sweepctl.campaign.plan import Frozen
-from sweepctl.campaign.progress import GoalRounds, build_progress
+from sweepctl.campaign.progress import GoalRounds, build_progress, project_goal, replica_price
 from sweepctl.campaign.recipe import Recipe
 from sweepctl.campaign.store import Store
 
@@ -255,16 +255,19 @@ def _goal_state(recipe, frozen, progress, cost: CostModel | None) -> dict | None
         "cpu_hours_spent": None,
         "slices": {},
     }
-    if cost is None:
+    live = [pp for pp in progress.values() if not pp.failed]
+    if any(replica_price(frozen, cost, pp) is None for pp in live):
         out["note"] = "the rounds are replayed with the cost model: give --calibration FILE"
         return out
-    rounds = GoalRounds(
-        recipe,
-        frozen,
-        lambda pp: cost.replica_seconds(pp.point, pp.layers, pp.warmup, frozen.strips),
-    )
+    rounds = GoalRounds(recipe, frozen, lambda pp: replica_price(frozen, cost, pp))
     decided = rounds.advance(progress)
     out["round"], out["reason"] = rounds.round, rounds.reason
+    # what the rounds still need, projected from the stored prefixes (none once stopped)
+    out["projected_cpu_hours"] = None
+    if rounds.reason is None:
+        out["projected_cpu_hours"] = project_goal(
+            recipe, frozen, progress, lambda pp: replica_price(frozen, cost, pp)
+        )["projected_cpu_hours"]
     if decided:
         last = decided[-1]
         out["cpu_hours_spent"] = last["cpu_seconds_spent"] / 3600.0

@@ -109,15 +109,20 @@ def slices(df: pd.DataFrame) -> list[Slice]:
     return out
 
 
-def select(df: pd.DataFrame, sl: Slice) -> ScalingData:
-    """The slice's points as :class:`ScalingData` (validated)."""
+def slice_points(df: pd.DataFrame, sl: Slice) -> pd.DataFrame:
+    """The rows of ``df`` in slice ``sl``, sorted by N and x."""
     part = df
     if sl.p_block is not None:
         mask = np.isclose(df["p_block"], sl.p_block) & np.isclose(df["p_open"], sl.p_open)
         if sl.epsilon is not None and "epsilon" in df.columns:
             mask &= np.isclose(df["epsilon"], sl.epsilon)
         part = df[mask]
-    part = part.sort_values(["N", "x"])
+    return part.sort_values(["N", "x"])
+
+
+def select(df: pd.DataFrame, sl: Slice) -> ScalingData:
+    """The slice's points as :class:`ScalingData` (validated)."""
+    part = slice_points(df, sl)
     strips = part[STRIPS_COLUMN] if STRIPS_COLUMN in part.columns else None
     return ScalingData(part["N"], part["x"], part["Gamma"], part["Gamma_err"], strips)
 

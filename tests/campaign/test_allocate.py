@@ -12,6 +12,7 @@ import pytest
 from sweepctl.campaign.allocate import (
     BUDGET_SPENT,
     GOAL_MET,
+    GROWTH,
     NO_IMPROVEMENT,
     PointState,
     SliceDesign,
@@ -339,3 +340,86 @@ def test_goal_rounds_replay_the_same_decisions_from_any_stored_prefix():
 
 def _strip_times(decisions):
     return json.loads(json.dumps(decisions))
+
+
+# -- ambiguous slices: replicas where the alternatives' predictions differ ---------------
+
+
+def _branch(f, nu: float):
+    """A second branch of the same form: the law's F and x_c with another ν (invented)."""
+    return dataclasses.replace(f, theta=np.array([nu, f.theta[1]]))
+
+
+def _law_gamma(nu: float, p: Point) -> float:
+    """Γ of the test law with exponent ``nu`` (F_1 ρ + F_3 ρ³ + Γ_c, x_c = 0)."""
+    rho = p.x * p.width ** (1.0 / nu)
+    return LAW.Gamma_c + LAW.F[0] * rho + LAW.F[2] * rho**3
+
+
+def test_an_alternative_branch_draws_replicas_where_it_disagrees(exact_points):
+    from sweepctl.campaign.allocate import SEPARATION
+
+    s = _slice(exact_points, 10.0)  # ν's goal is met many times over
+    assert s.fit.theta[0] == pytest.approx(LAW.nu, rel=1e-6)
+    nu_b = LAW.nu + 0.05
+    two = dataclasses.replace(s, alternatives=(_branch(s.fit, nu_b),))
+    kw = {"target": TARGET, "min_estimates": MIN_STRIPS, "budget_seconds": 1e9}
+    assert allocate([s], **kw).reason == GOAL_MET
+    a = allocate([two], **kw)
+    assert a.reason is None
+
+    # derived: one replica at i raises D = Σ (ΔF_i/σ_i)² by s ΔF_i²/v_i, v_i = the law's
+    # strip variance (the exact strips have it), ΔF from the law with both exponents;
+    # the greedy rule puts every replica on the largest rise per CPU-second
+    def rise(p: PointState) -> float:
+        dF = _law_gamma(nu_b, p.point) - _law_gamma(LAW.nu, p.point)
+        return STRIPS * dF**2 / LAW.strip_sigma(p.point.width, p.point.x, LAYERS) ** 2
+
+    d0 = sum(INITIAL * rise(p) for p in exact_points)
+    assert d0 < SEPARATION  # the pilot does not separate the branches
+    best = max(exact_points, key=lambda p: rise(p) / p.replica_seconds)
+    new = {p.point.key: a.wanted[p.point.key] - p.replicas for p in exact_points}
+    assert {k for k, v in new.items() if v} == {best.point.key}, new
+    # just enough replicas there to separate them (the model's ΔF agrees with the law's
+    # to rounding), within the round's limit of one more time the prefixes' CPU
+    need = (SEPARATION - d0) / rise(best)
+    limit = (GROWTH - 1) * sum(p.replicas * p.replica_seconds for p in exact_points)
+    assert need < limit / best.replica_seconds
+    assert new[best.point.key] == math.ceil(need - 1e-6)
+    # at the crossing both branches predict Γ_c: nothing goes there
+    assert all(new[p.point.key] == 0 for p in exact_points if p.point.x == 0.0)
+
+
+def test_a_separated_alternative_no_longer_draws_replicas(exact_points):
+    # a branch with ν far off is already rejected by the pilot (D ≫ SEPARATION)
+    s = _slice(exact_points, 10.0)
+    far = dataclasses.replace(s, alternatives=(_branch(s.fit, 1.5),))
+    a = allocate([far], target=TARGET, min_estimates=MIN_STRIPS, budget_seconds=1e9)
+    assert a.reason == GOAL_MET
+
+
+def test_goal_rounds_give_up_separating_after_a_few_rounds():
+    # an alternative 1e-4 away in ν is never separated by data of this size (derived:
+    # D ∝ Δν², 4e-6 of the 0.05-apart branch's above); once the half-width is within
+    # the goal the rounds spend SEPARATION_ROUNDS rounds on it, then stop at the goal
+    from sweepctl.campaign.allocate import SEPARATION_ROUNDS
+    from sweepctl.campaign.progress import GoalRounds, build_progress
+
+    def shadowed(data, symmetric):
+        f = _even_fit(data, symmetric)
+        return f, (dataclasses.replace(f, theta=f.theta + 1e-4),)
+
+    recipe, frozen = _goal_campaign()
+    progress = build_progress(recipe, frozen, None)
+    rounds = GoalRounds(recipe, frozen, _price, shadowed)
+    decisions = []
+    while rounds.reason is None and len(decisions) < 30:
+        for pp in progress.values():
+            for r in pp.missing():
+                pp.done[r] = _replica(pp.point, r, EVEN)
+        decisions += rounds.advance(progress)
+    assert rounds.reason == GOAL_MET
+    key = next(iter(decisions[-1]["nu_halfwidth"]))
+    within = [d for d in decisions if d["nu_halfwidth"][key] <= 0.08]
+    assert len(within) == SEPARATION_ROUNDS + 1 and within[-1] is decisions[-1]
+    assert all(d["replicas"] for d in within[:-1]) and all(d["alternatives"][key] for d in within)

@@ -91,6 +91,31 @@ def test_report_writes_plots_and_summaries(small_store, tmp_path):
         assert f"p = {v['p_value']:.3f}" in sections[k], k
         assert "| ν |" in sections[k] and "| branch |" in sections[k], k
         assert (out / f"collapse_{_tag(k)}.png").exists(), k
+    # where the CPU went: a heat map per slice, and per width the stored replica count
+    # and CPU (counted here from the Parquet rows) with its share
+    table = [
+        r
+        for p in (small_store / "replicas").glob("*.parquet")
+        for r in pq.read_table(p).to_pylist()
+    ]
+    for k in fits:
+        assert (out / f"cpu_{_tag(k)}.png").exists(), k
+        assert f"![cpu_{_tag(k)}.png]" in sections[k], k
+        kv = dict(p.split("=") for p in k.split(", "))
+        mine = [
+            r
+            for r in table
+            if f"{r['p_block']:g}" == kv["p_block"]
+            and f"{r['p_open']:g}" == kv["p_open"]
+            and f"{r['epsilon']:g}" == kv["epsilon"]
+        ]
+        total = sum(r["cpu_seconds"] for r in mine)
+        for n in sorted({r["width"] for r in mine}):
+            at = [r for r in mine if r["width"] == n]
+            cpu = sum(r["cpu_seconds"] for r in at)
+            share = f"{100 * cpu / total:.0f} %"
+            assert f"| {n} | {len(at)} | {cpu / 3600:.4g}" in sections[k], (k, n)
+            assert share in sections[k], (k, n, share)
     # a slice without an acceptable form says so and shows no headline ν or Γ_c
     for k, v in failed.items():
         if "error" in v:
