@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 
+from sweepctl.bench import CALIBRATION_FORMAT
 from tests.campaign.helpers import cli, events, write_recipe
 from tests.campaign.test_rehearsal import _calibration, _rows
 
@@ -151,7 +152,9 @@ def _other_calibration(path):
         for n in (4, 8, 16)
     ]
     path.write_text(
-        json.dumps({"kind": "sweepctl-kernel-calibration", "format": 2, "widths": rows})
+        json.dumps(
+            {"kind": "sweepctl-kernel-calibration", "format": CALIBRATION_FORMAT, "widths": rows}
+        )
     )
     return path
 
