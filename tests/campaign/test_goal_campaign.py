@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import json
 
-from sweepctl.bench import CALIBRATION_FORMAT
 from tests.campaign.helpers import cli, events, write_recipe
 from tests.campaign.test_rehearsal import _calibration, _rows
 
@@ -142,21 +141,8 @@ def test_a_goal_campaign_stores_the_same_replicas_when_cut_and_resumed(tmp_path)
 
 
 def _other_calibration(path):
-    rows = [
-        {
-            "width": n,
-            "column_seconds": 3.3e-6 * (n / 4) ** 3,
-            "column_seconds_disorder": 3.3e-5 * (n / 4) ** 3,
-            "qr_seconds": 1e-30,
-        }
-        for n in (4, 8, 16)
-    ]
-    path.write_text(
-        json.dumps(
-            {"kind": "sweepctl-kernel-calibration", "format": CALIBRATION_FORMAT, "widths": rows}
-        )
-    )
-    return path
+    # another machine's prices: columns ∝ N³ instead of N², 3× cheaper at N = 4
+    return _calibration(path, column=3.3e-6, power=3.0)
 
 
 def _replayed_with(store, cal_path):

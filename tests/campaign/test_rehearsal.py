@@ -50,12 +50,14 @@ def _law() -> RehearsalModel:
     return RehearsalModel.from_dict(LAW)
 
 
-def _calibration(path):
+def _calibration(path, column: float = 1e-5, power: float = 2.0):
+    """A calibration file pricing a column at ``column`` × (N/4)^power seconds (10× that
+    with disorder) and QRs at nothing."""
     rows = [
         {
             "width": n,
-            "column_seconds": 1e-5 * (n / 4) ** 2,
-            "column_seconds_disorder": 1e-4 * (n / 4) ** 2,
+            "column_seconds": column * (n / 4) ** power,
+            "column_seconds_disorder": 10 * column * (n / 4) ** power,
             "qr_seconds": 1e-30,
         }
         for n in CAL_WIDTHS
