@@ -79,7 +79,7 @@ from sweepctl.campaign.plan import next_target
 from sweepctl.campaign.recipe import Point
 from sweepctl.fss.fit import Fit, ScalingData, jacobian
 from sweepctl.fss.procedure import DEFAULT_MAX_ORDERS, SPREAD_EXTRA_PARAMS, stable_forms
-from sweepctl.fss.scan import P_ACCEPT, Z95
+from sweepctl.fss.scan import P_ACCEPT, Z95, determines_nu
 
 __all__ = [
     "BUDGET_SPENT",
@@ -277,6 +277,10 @@ class SliceDesign:
         self.nu = fit.model.nonlinear_names().index("nu")
         info = (self.J * (self.strips * self.per_strip)[:, None]).T @ self.J
         self.cov = np.linalg.pinv(info, hermitian=True)
+        #: the fit itself determines ν (a pseudo-inverse drops near-null directions and
+        #: would report a small Var(ν) for a fit whose own ν error is 10⁴: measured on a
+        #: rehearsal slice, orders 2,1,1,0 at N ≥ 16)
+        self.determined = determines_nu(fit)
         #: ΔF_ia = F_a − F of each alternative a at each row, and D_a = Σ_i (ΔF_ia/σ_i)²
         base = fit.model.evaluate(fit.theta, fit.f, x, n)
         cols = []
@@ -292,7 +296,10 @@ class SliceDesign:
         return float(self.cov[self.nu, self.nu])
 
     def halfwidth(self) -> float:
-        """Linearised 95 % half-width z₉₅·√Var(ν)."""
+        """Linearised 95 % half-width z₉₅·√Var(ν); infinite when the fit does not
+        determine ν (:attr:`determined`)."""
+        if not self.determined:
+            return math.inf
         return Z95 * math.sqrt(max(self.var_nu(), 0.0))
 
     def gains(self) -> np.ndarray:
@@ -406,10 +413,12 @@ def allocate(
         left -= add * p.replica_seconds
         spent += add * p.replica_seconds
 
-    # a slice that cannot be fitted yet grows uniformly (a longer pilot), within the round
-    # size and the budget
+    # a slice that cannot be fitted yet, or whose fit does not determine ν
+    # (SliceDesign.determined), grows uniformly (a longer pilot), within the
+    # round size and the budget
+    unfit = {s.key for s in slices if s.fit is None or not determines_nu(s.fit)}
     for s in slices:
-        if s.fit is not None:
+        if s.key not in unfit:
             continue
         for p in sorted(s.points, key=lambda q: q.point.key):
             add = min(
@@ -431,8 +440,8 @@ def allocate(
     designs: dict[str, SliceDesign] = {}
     halfwidth: dict[str, float] = {}
     for s in slices:
-        if s.fit is None:
-            halfwidth[s.key] = math.nan
+        if s.key in unfit:
+            halfwidth[s.key] = math.nan if s.fit is None else math.inf
             continue
         d = SliceDesign(s)
         halfwidth[s.key] = d.halfwidth()
@@ -442,7 +451,7 @@ def allocate(
                 d.add(row, extra)
         designs[s.key] = d
     goals_met = all(
-        s.fit is not None
+        s.key not in unfit
         and halfwidth[s.key] <= s.nu_halfwidth
         and not (separate and designs[s.key].unseparated().any())
         for s in slices

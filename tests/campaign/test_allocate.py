@@ -214,6 +214,43 @@ def test_a_slice_without_a_fit_grows_uniformly(noisy_points):
     assert all(a.wanted[p.point.key] == 2 * p.replicas for p in noisy_points)
 
 
+def _undetermined(f):
+    """The fit with ν's linearised error of the degenerate fit measured in the allocation
+    benchmark (2,1,1,0 at N ≥ 16 of a rehearsal slice: ν = 1.96 ± 1.4·10⁴)."""
+    err = f.theta_err.copy()
+    err[f.model.nonlinear_names().index("nu")] = 1.4e4
+    return dataclasses.replace(f, theta_err=err)
+
+
+def test_a_fit_that_does_not_determine_nu_never_meets_the_goal(noisy_points):
+    # Before: the design's pseudo-inverse dropped the near-null direction, its half-width
+    # was within the goal and the round said "goal met" for ν ± 1.4e4. Now the slice is
+    # not fitted for the allocator: it grows uniformly, as without a fit.
+    s = _slice(noisy_points, 10.0)
+    assert SliceDesign(s).halfwidth() < 10.0  # the real fit: determined, within 10
+    bad = dataclasses.replace(s, fit=_undetermined(s.fit))
+    assert math.isinf(SliceDesign(bad).halfwidth())
+    a = allocate([bad], target=TARGET, min_estimates=MIN_STRIPS, budget_seconds=1e9)
+    assert a.reason is None
+    assert all(a.wanted[p.point.key] == 2 * p.replicas for p in noisy_points)
+
+
+def test_a_window_that_does_not_determine_nu_is_not_a_stable_choice(noisy_points):
+    from sweepctl.fss.scan import ScanRow, stable_windows
+
+    data = slice_data(noisy_points)
+    rows = [
+        ScanRow(FORM, n, fit(data, FORM, n_min=n, starts=[np.array((2.6, 0.0))])) for n in (8, 16)
+    ]
+    for r in rows:
+        r.minima = [r.fit]
+    assert [r.n_min for r in stable_windows(rows)] == [8]
+    # the same windows with ν undetermined at N ≥ 8: agrees with everything, says nothing
+    rows[0] = ScanRow(FORM, 8, _undetermined(rows[0].fit))
+    rows[0].minima = [rows[0].fit]
+    assert stable_windows(rows) == []
+
+
 def test_decisions_do_not_depend_on_input_order(noisy_points):
     s = _slice(noisy_points, 0.001)
     other = dataclasses.replace(s, key="N=*|pb=0.1|po=0.1|eps=1e-06", nu_halfwidth=0.002)
