@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import contextlib
 import json
+import os
 import sys
 from pathlib import Path
 from typing import Annotated
@@ -42,8 +43,21 @@ def _flags_without_type() -> None:
 
 
 _flags_without_type()
-console = Console()
-err_console = Console(stderr=True)
+
+#: width of tables written to a file or pipe (a log): rich's default there is 80 columns,
+#: which cut the headers of `bench` and `status` to "layer…"
+LOG_WIDTH = 140
+
+
+def _console(stderr: bool = False) -> Console:
+    c = Console(stderr=stderr)
+    if not c.is_terminal and "COLUMNS" not in os.environ:
+        c = Console(stderr=stderr, width=LOG_WIDTH)
+    return c
+
+
+console = _console()
+err_console = _console(stderr=True)
 _DEBUG = {"on": False}
 
 
