@@ -926,12 +926,17 @@ def _goal_line(goal: dict) -> str:
     head = f"goal: nu ± {goal['nu_halfwidth']:g} per slice within {goal['cpu_hours']:g} CPU-hours"
     if goal.get("note"):
         return f"{head} ({goal['note']})"
-    parts = [
-        f"{k}: nu = {v['nu']:.4g} ± {v['halfwidth']:.3g}"
-        if v["nu"] is not None
-        else f"{k}: no acceptable form yet"
-        for k, v in goal["slices"].items()
-    ]
+    parts = []
+    for k, v in goal["slices"].items():
+        if v["nu"] is None:
+            parts.append(f"{k}: no acceptable form yet")
+            continue
+        hw = v.get("halfwidth")
+        text = f"{k}: nu = {v['nu']:.4g}" + (f" ± {hw:.3g}" if hw is not None else "")
+        c = v.get("check")
+        if c is not None and c["nu_ci"][0] is not None:
+            text += f" (sweepctl fit: [{c['nu_ci'][0]:.4g}, {c['nu_ci'][1]:.4g}])"
+        parts.append(text)
     spent = goal["cpu_hours_spent"]
     tail = f"; {spent:.3g} CPU-hours spent" if spent is not None else ""
     proj = goal.get("projected_cpu_hours")

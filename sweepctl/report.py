@@ -388,6 +388,7 @@ def outcome_summary(o: Outcome) -> dict:
             for b in o.branches
         ],
         nu_model_spread=_pair(o.model_spread("nu")),
+        nu_budget=_pair(o.nu_budget()),
         Gamma_c_model_spread=_pair(o.model_spread("Gamma_c")),
         stable_forms=[_attempt(r) for r in o.stable_forms],
         correction_sensitivity=o.sensitivity_reason or None,
@@ -549,6 +550,13 @@ def words(o: Outcome) -> list[str]:
             f"Model choice: {len(o.stable_forms)} stable forms give ν from {lo:.3f} to "
             f"{hi:.3f}{extra}."
         )
+        blo, bhi = o.nu_budget()
+        if blo < slo or bhi > shi:
+            out.append(
+                f"With the choice of form: ν in [{blo:.3f}, {bhi:.3f}], the hull of the "
+                "headline interval and the 95 % intervals of those forms (the interval to "
+                "quote when the forms' intervals differ)."
+            )
     if o.sensitivity_reason:
         ok = o.sensitivity_fits()
         out.append(

@@ -78,7 +78,14 @@ import numpy as np
 from sweepctl.campaign.plan import next_target
 from sweepctl.campaign.recipe import Point
 from sweepctl.fss.fit import Fit, ScalingData, jacobian
-from sweepctl.fss.procedure import DEFAULT_MAX_ORDERS, SPREAD_EXTRA_PARAMS, stable_forms
+from sweepctl.fss.procedure import (
+    DEFAULT_MAX_ORDERS,
+    DEFAULT_RESAMPLES,
+    SPREAD_EXTRA_PARAMS,
+    admissible,
+    stable_forms,
+)
+from sweepctl.fss.procedure import run as run_procedure
 from sweepctl.fss.scan import P_ACCEPT, Z95, determines_nu
 
 __all__ = [
@@ -196,35 +203,95 @@ def fit_slice_branches(data: ScalingData, symmetric: bool) -> tuple[Fit | None, 
     intervals covered the law's ν less often than uniform precision did
     (tests/benchmarks/bench_allocation.py, DEVELOPERS.md).
 
-    Alternatives (module docstring, "Ambiguous slices"): other acceptable minima of the
-    chosen form, and the best acceptable minimum of each of those stable forms none of
-    whose acceptable minima overlaps the choice's ν interval. Deterministic (fixed
+    Only fits ``sweepctl fit`` may report count (:func:`sweepctl.fss.procedure.
+    admissible`: acceptable and not ruled out by leading-order dominance, [M8]
+    tests/REFERENCES.md); without that, on the rehearsal law of recipes/rehearsal.toml
+    the rule steered by the trap minima at ν ≈ 1.6 (wider intervals) and the rounds
+    ended "no point can improve it" at ν = 1.62 ± 0.10 for a law with ν = 2.6.
+
+    Alternatives (module docstring, "Ambiguous slices"): other admissible minima of the
+    chosen form, and the best admissible minimum of each of those stable forms none of
+    whose admissible minima overlaps the choice's ν interval. Deterministic (fixed
     design seeds), so a replay of the rounds fits the same forms.
     """
     if len(data.widths()) < 2:
         return None, ()
-    stable = stable_forms(data, symmetric, MAX_ORDERS)
-    if not stable:
+    # the forms `sweepctl fit` may report: stable, with a minimum that is acceptable and
+    # not ruled out by leading-order dominance ([M8]); each steered by its best such one
+    rows = []
+    for r in stable_forms(data, symmetric, MAX_ORDERS):
+        ok = [f for f in (r.minima or [r.fit]) if admissible(f)]
+        if ok:
+            rows.append((r, ok))
+    if not rows:
         return None, ()
-    near = [r for r in stable if r.model.n_params <= stable[0].model.n_params + SPREAD_EXTRA_PARAMS]
+    fewest = rows[0][0].model.n_params
+    near = [(r, ok) for r, ok in rows if r.model.n_params <= fewest + SPREAD_EXTRA_PARAMS]
 
-    def width(r) -> float:
-        e = r.fit.linear_error("nu")
+    def width(ok) -> float:
+        e = ok[0].linear_error("nu")
         return e if math.isfinite(e) else -math.inf
 
     choice = near[0]
-    for r in near[1:]:
-        if width(r) > width(choice):
-            choice = r
-    ci = _nu_ci(choice.fit)
-    alts = [f for f in choice.minima[1:] if _acceptable(f) and _disjoint(_nu_ci(f), ci)]
-    for row in near:
-        if row is choice:
+    for item in near[1:]:
+        if width(item[1]) > width(choice[1]):
+            choice = item
+    best = choice[1][0]
+    ci = _nu_ci(best)
+    alts = [f for f in choice[1][1:] if _disjoint(_nu_ci(f), ci)]
+    for r, ok in near:
+        if r is choice[0]:
             continue
-        ok = [f for f in (row.minima or [row.fit]) if _acceptable(f)]
-        if ok and all(_disjoint(_nu_ci(f), ci) for f in ok):
+        if all(_disjoint(_nu_ci(f), ci) for f in ok):
             alts.append(ok[0])
-    return choice.fit, tuple(alts)
+    return best, tuple(alts)
+
+
+@dataclass(frozen=True)
+class Check:
+    """What ``sweepctl fit`` reports for a slice whose linearised half-width met the goal:
+    ν and its 95 % interval with the choice of form in it (:meth:`sweepctl.fss.procedure.
+    Outcome.nu_budget`: the resampled headline interval, every branch not ruled out, and
+    the stable forms' intervals)."""
+
+    nu: float
+    lo: float
+    hi: float
+
+    @property
+    def halfwidth(self) -> float:
+        """Half the headline interval's width (infinite without an acceptable form)."""
+        w = 0.5 * (self.hi - self.lo)
+        return w if math.isfinite(w) else math.inf
+
+    def as_dict(self) -> dict:
+        def fin(v: float) -> float | None:
+            return float(v) if math.isfinite(v) else None
+
+        return {
+            "nu": fin(self.nu),
+            "nu_ci": [fin(self.lo), fin(self.hi)],
+            "halfwidth": fin(self.halfwidth),
+        }
+
+
+#: resampled refits of the goal check (as ``sweepctl fit``'s default) and their seed
+CHECK_RESAMPLES = DEFAULT_RESAMPLES
+CHECK_SEED = 0
+
+
+def check_slice(data: ScalingData, symmetric: bool) -> Check:
+    """The full procedure of ``sweepctl fit`` on one slice, in process, with its default
+    settings (:func:`sweepctl.fss.procedure.run`): the check a linearised "goal met" must
+    pass. Deterministic (fixed resampling seed), so a replay repeats it."""
+    nan = math.nan
+    if len(data.widths()) < 2:
+        return Check(nan, nan, nan)
+    out = run_procedure(data, symmetric=symmetric, resamples=CHECK_RESAMPLES, seed=CHECK_SEED)
+    if not out.acceptable:
+        return Check(nan, nan, nan)
+    lo, hi = out.nu_budget()
+    return Check(out.best.values()["nu"], lo, hi)
 
 
 def _acceptable(f: Fit) -> bool:

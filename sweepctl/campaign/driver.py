@@ -339,8 +339,16 @@ class Driver:
             hw = ", ".join(
                 f"{k}: nu = {d['nu'][k]:.4g} ± {v:.3g}"
                 for k, v in d["nu_halfwidth"].items()
-                if v is not None
+                if v is not None and d["nu"].get(k) is not None
             )
+            for k, c in d.get("check", {}).items():
+                lo, hi = c["nu_ci"]
+                said = (
+                    f"[{lo:.4g}, {hi:.4g}] (± {c['halfwidth']:.3g})"
+                    if lo is not None and hi is not None
+                    else "no acceptable form"
+                )
+                hw += f"; check {k} (sweepctl fit): {said}"
             what = d["reason"] or f"{sum(d['replicas'].values())} replicas wanted"
             self.say({"kind": "log", "message": f"round {d['round']}: {what}; {hw or 'no fit'}"})
         if not decided:

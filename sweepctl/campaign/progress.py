@@ -205,6 +205,17 @@ class GoalRounds:
     ``fitter(data, symmetric)`` the slice fit, a :class:`~sweepctl.fss.fit.Fit` (or None)
     or a pair (fit, alternatives) as
     :func:`~sweepctl.campaign.allocate.fit_slice_branches` returns (the default).
+
+    **The check.** The rounds steer by the linearised half-width of one form; ``sweepctl
+    fit`` prints a resampled interval that covers every branch and can be wider. When a
+    round finds every slice's linearised half-width within the goal, ``checker(data,
+    symmetric)`` (default :func:`~sweepctl.campaign.allocate.check_slice`: the full
+    procedure of ``sweepctl fit``) is run on each slice; the goal is met only if each
+    headline half-width is within it too. A slice that fails has its linearised aim
+    tightened — by goal/checked half-width, and at least below its current linearised
+    half-width — and the same round is decided again with that aim, so more replicas go
+    where the linearised design says ν's interval shrinks most. The aims are a pure
+    function of the prefixes, as every other decision.
     """
 
     def __init__(
@@ -213,8 +224,9 @@ class GoalRounds:
         frozen: Frozen,
         price: Callable[[PointProgress], float],
         fitter: Callable | None = None,
+        checker: Callable | None = None,
     ) -> None:
-        from sweepctl.campaign.allocate import fit_slice_branches
+        from sweepctl.campaign.allocate import check_slice, fit_slice_branches
 
         if recipe.goal is None:
             raise ValueError("goal rounds need a recipe with [goal]")
@@ -223,6 +235,11 @@ class GoalRounds:
         self.min_estimates = frozen.min_strip_estimates
         self.price = price
         self.fitter = fitter or fit_slice_branches
+        self.checker = checker or check_slice
+        #: per slice, the linearised aim as a fraction of the goal (1 until a check fails)
+        self.aim: dict[str, float] = {}
+        #: per slice, the last check (:class:`~sweepctl.campaign.allocate.Check`)
+        self.checks: dict = {}
         #: rounds decided so far (round 0 is every point's first round)
         self.round = 0
         #: why the campaign stopped (``allocate``'s reason), or None
@@ -232,7 +249,14 @@ class GoalRounds:
 
     def advance(self, progress: dict[str, PointProgress]) -> list[dict]:
         """Decide every round whose prefixes are complete; the decisions as events."""
-        from sweepctl.campaign.allocate import PointState, SliceState, allocate, slice_data
+        from sweepctl.campaign.allocate import (
+            GOAL_MET,
+            SEPARATION_ROUNDS,
+            PointState,
+            SliceState,
+            allocate,
+            slice_data,
+        )
 
         out: list[dict] = []
         while self.reason is None:
@@ -251,23 +275,53 @@ class GoalRounds:
                         max_replicas=pp.max_replicas,
                     )
                 )
+            goal = self.goal.nu_halfwidth
             slices = []
             for key, pts in sorted(by_slice.items()):
                 symmetric = pts[0].point.p_block == pts[0].point.p_open
                 fit, alts = self.fitter(slice_data(pts), symmetric), ()
                 if isinstance(fit, tuple):
                     fit, alts = fit
-                slices.append(SliceState(key, tuple(pts), fit, self.goal.nu_halfwidth, tuple(alts)))
+                aim = goal * self.aim.get(key, 1.0)
+                slices.append(SliceState(key, tuple(pts), fit, aim, tuple(alts)))
             spent = sum(p.replicas * p.replica_seconds for s in slices for p in s.points)
-            from sweepctl.campaign.allocate import SEPARATION_ROUNDS
 
-            a = allocate(
-                slices,
-                target=self.target,
-                min_estimates=self.min_estimates,
-                budget_seconds=self.goal.cpu_hours * 3600.0 - spent,
-                separate=self.separation_rounds < SEPARATION_ROUNDS,
-            )
+            def decide(slices, spent=spent):
+                return allocate(
+                    slices,
+                    target=self.target,
+                    min_estimates=self.min_estimates,
+                    budget_seconds=self.goal.cpu_hours * 3600.0 - spent,
+                    separate=self.separation_rounds < SEPARATION_ROUNDS,
+                )
+
+            a = decide(slices)
+            checked: dict = {}
+            if a.reason == GOAL_MET:
+                # the linearised goal is met: does `sweepctl fit` agree? (class docstring)
+                for s in slices:
+                    symmetric = s.points[0].point.p_block == s.points[0].point.p_open
+                    checked[s.key] = self.checker(slice_data(s.points), symmetric)
+                self.checks.update(checked)
+                failed = [s for s in slices if not checked[s.key].halfwidth <= goal]
+                if failed:
+                    for s in failed:
+                        h = checked[s.key].halfwidth
+                        now = self.aim.get(s.key, 1.0)
+                        tighter = now * goal / h if math.isfinite(h) else 0.5 * now
+                        below = 0.99 * a.halfwidth[s.key] / goal
+                        self.aim[s.key] = min(tighter, below) if math.isfinite(below) else tighter
+                    slices = [
+                        SliceState(
+                            s.key,
+                            s.points,
+                            s.fit,
+                            goal * self.aim.get(s.key, 1.0),
+                            s.alternatives,
+                        )
+                        for s in slices
+                    ]
+                    a = decide(slices)
             if all(
                 s.fit is not None and a.halfwidth[s.key] <= s.nu_halfwidth for s in slices
             ) and any(s.alternatives for s in slices):
@@ -299,6 +353,10 @@ class GoalRounds:
                     },
                     "nu_halfwidth": {k: _finite(v) for k, v in a.halfwidth.items()},
                     "projected_halfwidth": {k: _finite(v) for k, v in a.projected.items()},
+                    # the linearised aim of each slice (the goal, or tighter after a check)
+                    "aim_halfwidth": {s.key: s.nu_halfwidth for s in slices},
+                    # `sweepctl fit`'s interval, where this round checked it
+                    "check": {k: c.as_dict() for k, c in checked.items()},
                     "replicas": grown,
                 }
             )

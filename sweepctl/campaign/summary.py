@@ -272,7 +272,13 @@ def _goal_state(recipe, frozen, progress, cost: CostModel | None) -> dict | None
         last = decided[-1]
         out["cpu_hours_spent"] = last["cpu_seconds_spent"] / 3600.0
         out["slices"] = {
-            k: {"form": last["forms"][k], "nu": last["nu"][k], "halfwidth": last["nu_halfwidth"][k]}
+            k: {
+                "form": last["forms"][k],
+                "nu": last["nu"][k],
+                "halfwidth": last["nu_halfwidth"][k],
+                # `sweepctl fit`'s interval where a round checked it (GoalRounds)
+                "check": rounds.checks[k].as_dict() if k in rounds.checks else None,
+            }
             for k in last["nu"]
         }
     return out

@@ -4,9 +4,11 @@ the allocator: scan → stable choice → branches → resampled refit → sensi
 Steps (numpy/scipy only; the caller passes a ``mapper`` to spread resampling):
 
 1. **Forms.**  Without fixed orders, every form up to ``max_orders`` (default
-   :data:`DEFAULT_MAX_ORDERS`) is fitted at every smallest width N_min, each fit exploring
-   its nonlinear parameters globally (:func:`sweepctl.fss.fit.explore`); the stable
-   choice is the fewest-parameter form whose ν is stable from an acceptable N_min on
+   :data:`DEFAULT_MAX_ORDERS`) is fitted at every smallest width N_min that leaves at
+   least three widths (:data:`sweepctl.fss.scan.SCAN_MIN_WIDTHS`: on two, ν is an
+   effective exponent, step 6), each fit exploring its nonlinear parameters globally
+   (:func:`sweepctl.fss.fit.explore`); the stable choice is the fewest-parameter form
+   whose ν is stable from an acceptable N_min on and determined there
    (:func:`sweepctl.fss.scan.stable_choice`; [M5] tests/REFERENCES.md).  With fixed
    orders, that one form is fitted (at the given N_min).
 2. **Branches.**  The chosen window is explored again more thoroughly; every distinct
@@ -60,7 +62,14 @@ from sweepctl.fss.fit import (
     explore,
 )
 from sweepctl.fss.model import Orders, ScalingModel
-from sweepctl.fss.scan import P_ACCEPT, Z95, ScanRow, candidate_models, stable_windows
+from sweepctl.fss.scan import (
+    P_ACCEPT,
+    SCAN_MIN_WIDTHS,
+    Z95,
+    ScanRow,
+    candidate_models,
+    stable_windows,
+)
 
 #: largest orders of the default scan (wide enough for φ⁴ terms, a φ²ψ₁ cross term and
 #: nonlinear fields)
@@ -86,9 +95,13 @@ def _acceptable(f: Fit) -> bool:
     return f.p_value >= P_ACCEPT and not f.at_bound
 
 
-def _admissible(f: Fit) -> bool:
-    """Acceptable and not ruled out by leading-order dominance ([M8] tests/REFERENCES.md)."""
+def admissible(f: Fit) -> bool:
+    """Acceptable (p ≥ 0.1, no parameter on a bound) and not ruled out by leading-order
+    dominance ([M8] tests/REFERENCES.md): the fits the procedure may report."""
     return _acceptable(f) and leading_order(f).ok
+
+
+_admissible = admissible
 
 
 def _row_fits(r: ScanRow) -> list[Fit]:
@@ -200,6 +213,25 @@ class Outcome:
         vals = [v for v in vals if math.isfinite(v)]
         return (min(vals), max(vals)) if vals else (math.nan, math.nan)
 
+    def nu_budget(self) -> tuple[float, float]:
+        """ν's interval with the choice of form in it: the hull of the headline interval
+        and of the linearised 95 % interval of every admissible minimum of the stable forms
+        within :data:`SPREAD_EXTRA_PARAMS` of the choice (step 4).
+
+        The model-choice spread of point values can sit inside a narrow headline interval
+        while a form with more terms, as acceptable, says otherwise: measured on a
+        rehearsal law with a ρ⁴ term (ν = 2.6), the fewest-parameter form 2,0,1,0 gave
+        [2.555, 2.588] at p = 0.41 and 4,0,1,0, the law's own form, [2.566, 2.608].
+        """
+        lo, hi = self.interval("nu")
+        if not (math.isfinite(lo) and math.isfinite(hi)):
+            return (math.nan, math.nan)
+        for f in self._spread_fits():
+            nu, e = f.values()["nu"], f.linear_error("nu")
+            if math.isfinite(nu) and math.isfinite(e):
+                lo, hi = min(lo, nu - Z95 * e), max(hi, nu + Z95 * e)
+        return (lo, hi)
+
     def sensitivity_fits(self) -> list[Fit]:
         return [f for r in self.sensitivity for f in _row_fits(r) if _admissible(f)]
 
@@ -232,8 +264,12 @@ class Outcome:
 
 
 def _fit_rows(data, models, widths, progress, stage, per_bin=1) -> list[ScanRow]:
-    need = {m: 3 if m.has_irrelevant else 2 for m in models}
-    jobs = [(m, n) for m in models for n in widths if len([w for w in widths if w >= n]) >= need[m]]
+    jobs = [
+        (m, n)
+        for m in models
+        for n in widths
+        if len([w for w in widths if w >= n]) >= SCAN_MIN_WIDTHS
+    ]
     rows = []
     for k, (m, n) in enumerate(jobs):
         try:
@@ -385,6 +421,7 @@ __all__ = [
     "Y_GRID",
     "Branch",
     "Outcome",
+    "admissible",
     "run",
     "stable_forms",
 ]

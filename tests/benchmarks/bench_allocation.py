@@ -25,8 +25,13 @@ Both use the same *form rule* (how the slice's form is chosen each round):
 * ``frozen``: the driver's choice of the first round that has one, then that form and
   N_min for the rest of the campaign.
 
-Coverage: the fraction of seeds whose final linearised 95 % interval ν ± z₉₅σ holds the
-law's ν. Its binomial standard error is printed beside it.
+Both stop only when the goal check passes as well (:class:`sweepctl.campaign.progress.
+GoalRounds`: ``sweepctl fit``'s own headline interval within the goal); a uniform run
+still short of it at ``UNIFORM_CENSOR_HOURS`` is stopped and marked censored.
+
+Coverage: the fraction of seeds whose final ``sweepctl fit`` interval (the check's
+headline interval, resampled, every branch) holds the law's ν; a run that ends without
+an acceptable form does not cover. Its binomial standard error is printed beside it.
 
 Part 1 simulates in process on the rehearsal model (the worker's own draw, the same
 seeds and prices as a campaign; no Dask). Part 2 runs ``sweepctl run`` on the network
@@ -60,10 +65,12 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 
 from sweepctl.campaign.allocate import (
+    GOAL_MET,
     MARGIN,
     PointState,
     SliceDesign,
     SliceState,
+    check_slice,
     fit_slice,
     fit_slice_branches,
     slice_data,
@@ -79,7 +86,7 @@ from sweepctl.fss.procedure import (
     DEFAULT_MAX_ORDERS,
     stable_forms,
 )
-from sweepctl.fss.scan import P_ACCEPT, Z95
+from sweepctl.fss.scan import P_ACCEPT
 
 #: the rehearsal law: even in ρ like the clean network, with the ρ⁴ term the fewest-
 #: parameter forms lack (the law of recipes/rehearsal.toml without its correction)
@@ -90,6 +97,8 @@ REPLICA = {"layers": 2000, "warmup": 64, "strips": 16, "initial": 4}
 #: a loose floor: 4 replicas of 16 strips (the 51 strip values an error bar needs) meet it
 FLOOR = 0.2
 ENTROPY0 = 0xA110C_BE4C_0000
+#: a uniform run still short of the goal is stopped here (censored: a lower bound)
+UNIFORM_CENSOR_HOURS = 200.0
 
 
 def recipe_dict(entropy: int, goal: float, *, target: float = FLOOR, with_goal: bool = True):
@@ -177,8 +186,14 @@ class Outcome:
     form: str
     reason: str
 
+    #: the interval ``sweepctl fit`` prints at the end (the goal check's, :func:`~sweepctl.
+    #: campaign.allocate.check_slice`); NaN when it finds no acceptable form
+    lo: float = math.nan
+    hi: float = math.nan
+
     def covers(self, nu: float) -> bool:
-        return abs(self.nu - nu) <= Z95 * self.sigma
+        """The final `sweepctl fit` interval holds ``nu`` (no interval: not covered)."""
+        return bool(self.lo <= nu <= self.hi)
 
 
 def _draw(frozen, model, point, r: int) -> np.ndarray:
@@ -221,16 +236,22 @@ def fit_aware(seed: int, goal: float, rule: str, cost: CostModel) -> Outcome:
     cpu = sum(price(pp) * len(pp.done) for pp in progress.values())
     f = last["fit"]
     key = fit_slice_key(next(iter(progress.values())).point)
+    c = rounds.checks.get(key) if rounds.reason == GOAL_MET else None
+    if c is None:  # stopped otherwise: what `sweepctl fit` says of the final data
+        pts = _slice_states(progress, price)
+        c = check_slice(slice_data(pts), True)
     return Outcome(
         "fit-aware",
         seed,
         cpu,
-        f.values()["nu"],
-        f.linear_error("nu"),
-        decisions[-1]["nu_halfwidth"][key],
+        c.nu,
+        math.nan if f is None else f.linear_error("nu"),
+        c.halfwidth,
         rounds.round,
-        f.model.orders.label() + f" N_min={f.n_min}",
+        "no fit" if f is None else f.model.orders.label() + f" N_min={f.n_min}",
         rounds.reason,
+        c.lo,
+        c.hi,
     )
 
 
@@ -260,10 +281,16 @@ def uniform(seed: int, goal: float, rule: str, cost: CostModel) -> Outcome:
         if f is not None:
             d = SliceDesign(SliceState("s", tuple(pts), f, goal, alts))
             hw = d.halfwidth()
-            # as for the goal rounds: the goal needs every alternative separated
+            # as for the goal rounds: the goal needs every alternative separated, and
+            # then `sweepctl fit`'s own interval within it (the goal check)
             if hw <= goal and not d.unseparated().any():
-                break
-            if hw > goal:
+                check = check_slice(slice_data(pts), symmetric)
+                if check.halfwidth <= goal:
+                    reason = "goal met"
+                    break
+                h = check.halfwidth if math.isfinite(check.halfwidth) else 2 * goal
+                t *= min(max(goal / (h * math.sqrt(MARGIN)), 0.5), 0.99)
+            elif hw > goal:
                 t *= min(max(goal / (hw * math.sqrt(MARGIN)), 0.5), 0.99)
             else:  # only the alternatives are left: twice the replicas
                 t /= math.sqrt(2.0)
@@ -278,19 +305,28 @@ def uniform(seed: int, goal: float, rule: str, cost: CostModel) -> Outcome:
                 for r in range(pp.wanted, want):
                     pp.done[r] = _draw(frozen, model, pp.point, r)
                 pp.wanted = want
-        if rounds > 40:
-            raise RuntimeError("uniform: no convergence in 40 levels")
+        cpu = sum(price(pp) * len(pp.done) for pp in progress.values())
+        if rounds > 40 or cpu > UNIFORM_CENSOR_HOURS * 3600.0:
+            # censored: its CPU is a lower bound; its interval what `fit` says now
+            pts = _slice_states(progress, price)
+            check = check_slice(slice_data(pts), symmetric)
+            reason = "censored"
+            break
+    else:  # pragma: no cover - the loop only ends by break
+        pass
     cpu = sum(price(pp) * len(pp.done) for pp in progress.values())
     return Outcome(
         "uniform",
         seed,
         cpu,
-        f.values()["nu"],
-        f.linear_error("nu"),
-        hw,
+        check.nu,
+        math.nan if f is None else f.linear_error("nu"),
+        check.halfwidth,
         rounds,
-        f.model.orders.label() + f" N_min={f.n_min}",
-        "goal met",
+        "no fit" if f is None else f.model.orders.label() + f" N_min={f.n_min}",
+        reason,
+        check.lo,
+        check.hi,
     )
 
 
@@ -318,7 +354,8 @@ def rehearsal_table(seeds, goal, rules, cal, processes) -> dict:
             # one line per run as it ends (a long benchmark can be cut)
             print(
                 f"  {job[3]:7} {r.strategy:9} seed {r.seed:5}: {r.cpu_seconds / 3600:.4f} CPU-h, "
-                f"nu = {r.nu:.4f} ± {Z95 * r.sigma:.4f}, {r.rounds} rounds, {r.form}",
+                f"fit: nu = {r.nu:.4f} [{r.lo:.4f}, {r.hi:.4f}], {r.rounds} rounds, "
+                f"{r.form}, {r.reason}",
                 flush=True,
             )
             results.append(r)
@@ -350,7 +387,7 @@ def rehearsal_table(seeds, goal, rules, cal, processes) -> dict:
                 "cpu_hours_mean": float(np.mean(cpu)),
                 "coverage": float(cov),
                 "coverage_se": se,
-                "nu_mean": float(np.mean([r.nu for r in rs])),
+                "nu_mean": float(np.nanmean([r.nu for r in rs])),
                 "rounds_mean": float(np.mean([r.rounds for r in rs])),
                 "forms": _count(r.form for r in rs),
                 "reasons": _count(r.reason for r in rs),
@@ -389,10 +426,12 @@ def _count(items) -> dict:
 
 # -- part 2: the network kernel through `sweepctl run` ---------------------------------
 
-NET_WIDTHS = [4, 6, 8]
+NET_WIDTHS = [4, 6, 8, 10]
 NET_COUPLINGS = [-0.3, -0.2, -0.1, 0.0, 0.1, 0.2, 0.3]
 NET_REPLICA = {"layers": 4000, "warmup": 32, "strips": 8, "initial": 7}
 NU_REFERENCE = 2.593  # [P1] tests/REFERENCES.md
+#: CPU-hours a network goal run may spend (its [goal] cpu_hours)
+NET_BUDGET = 0.5
 
 
 def _toml(d: dict) -> str:
@@ -430,7 +469,9 @@ def _store_fit(store: Path, goal: float, rule: str, cal: list[dict]):
     f, _ = _pair(RULES[rule]()(slice_data(pts), True))
     hw = math.inf if f is None else SliceDesign(SliceState("s", tuple(pts), f, goal)).halfwidth()
     cpu = float(np.sum(rows.column("cpu_seconds").to_numpy()))
-    return f, hw, cpu
+    # what `sweepctl fit` prints for the store (the goal check): coverage is judged on it
+    check = check_slice(slice_data(pts), True) if f is not None and hw <= goal else None
+    return f, hw, cpu, check
 
 
 def network_table(seeds, goal, rule, cal_path: Path, cal, censor: float = 10.0) -> list:
@@ -448,16 +489,12 @@ def network_table(seeds, goal, rule, cal_path: Path, cal, censor: float = 10.0) 
                 "replica": dict(NET_REPLICA),
             }
             rec = tmp / "goal.toml"
-            rec.write_text(_toml(base | {"goal": {"nu_halfwidth": goal, "cpu_hours": 50.0}}))
+            rec.write_text(_toml(base | {"goal": {"nu_halfwidth": goal, "cpu_hours": NET_BUDGET}}))
             t0 = time.time()
             _sweepctl("run", rec, tmp / "fa", "--workers", "2", "--calibration", cal_path)
-            f, hw, cpu = _store_fit(tmp / "fa", goal, rule, cal)
-            out.append(("fit-aware", seed, cpu, f, hw, time.time() - t0, False))
-            print(
-                f"  seed {seed} fit-aware: {cpu / 3600:.4f} CPU-h, nu = "
-                f"{f.values()['nu']:.3f} ± {hw:.3f}",
-                flush=True,
-            )
+            f, hw, cpu, c = _store_fit(tmp / "fa", goal, rule, cal)
+            out.append(("fit-aware", seed, cpu, f, hw, time.time() - t0, False, c))
+            print(f"  seed {seed} fit-aware: {cpu / 3600:.4f} CPU-h, {_said(f, hw, c)}", flush=True)
             # uniform: the same store tightened level by level (the pilot is shared)
             t, t0, censored = None, time.time(), False
             for _ in range(30):
@@ -465,8 +502,8 @@ def network_table(seeds, goal, rule, cal_path: Path, cal, censor: float = 10.0) 
                 rec = tmp / "uniform.toml"
                 rec.write_text(_toml(r))
                 _sweepctl("run", rec, tmp / "un", "--workers", "2", "--calibration", cal_path)
-                fu, hwu, cpuu = _store_fit(tmp / "un", goal, rule, cal)
-                if fu is not None and hwu <= goal:
+                fu, hwu, cpuu, cu = _store_fit(tmp / "un", goal, rule, cal)
+                if fu is not None and hwu <= goal and cu is not None and cu.halfwidth <= goal:
                     break
                 if cpuu > censor * cpu:
                     censored = True
@@ -476,11 +513,13 @@ def network_table(seeds, goal, rule, cal_path: Path, cal, censor: float = 10.0) 
                 if fu is None:
                     t /= math.sqrt(2.0)
                 else:
-                    t *= min(max(goal / (hwu * math.sqrt(MARGIN)), 0.5), 0.99)
-            out.append(("uniform", seed, cpuu, fu, hwu, time.time() - t0, censored))
+                    h = hwu if cu is None else max(hwu, cu.halfwidth)
+                    h = h if math.isfinite(h) else 2 * goal
+                    t *= min(max(goal / (h * math.sqrt(MARGIN)), 0.5), 0.99)
+            out.append(("uniform", seed, cpuu, fu, hwu, time.time() - t0, censored, cu))
             print(
                 f"  seed {seed} uniform:   {'≥ ' if censored else ''}{cpuu / 3600:.4f} CPU-h, "
-                f"nu = {fu.values()['nu']:.3f} ± {hwu:.3f}"
+                + _said(fu, hwu, cu)
                 + (
                     f" (stopped at {censor:g}× the fit-aware CPU, goal not reached)"
                     if censored
@@ -489,6 +528,15 @@ def network_table(seeds, goal, rule, cal_path: Path, cal, censor: float = 10.0) 
                 flush=True,
             )
     return out
+
+
+def _said(f, hw: float, c) -> str:
+    if f is None:
+        return "no fit"
+    text = f"nu = {f.values()['nu']:.3f} ± {hw:.3f} (linearised)"
+    if c is not None:
+        text += f", sweepctl fit: [{c.lo:.3f}, {c.hi:.3f}]"
+    return text
 
 
 def _max_rel_err(store: Path) -> float:
@@ -550,16 +598,15 @@ def main() -> None:
                     "strategy": s,
                     "seed": sd,
                     "cpu_hours": c / 3600,
-                    "nu": f.values()["nu"],
-                    "sigma": f.linear_error("nu"),
+                    "nu": None if f is None else f.values()["nu"],
                     "halfwidth": hw,
-                    "form": f.model.describe(),
-                    "covers_reference": abs(f.values()["nu"] - NU_REFERENCE)
-                    <= Z95 * f.linear_error("nu"),
+                    "form": None if f is None else f.model.describe(),
+                    "fit_interval": None if chk is None else [chk.lo, chk.hi],
+                    "covers_reference": chk is not None and chk.lo <= NU_REFERENCE <= chk.hi,
                     "wall_seconds": w,
                     "censored": cens,
                 }
-                for s, sd, c, f, hw, w, cens in rows
+                for s, sd, c, f, hw, w, cens, chk in rows
             ]
             for s in ("uniform", "fit-aware"):
                 rs = [r for r in result["network"] if r["strategy"] == s]

@@ -375,6 +375,63 @@ def test_goal_rounds_replay_the_same_decisions_from_any_stored_prefix():
     assert missing == {(k, r) for k, r, _ in stored[cut : ends[1]]}
 
 
+def _run_rounds(checker):
+    from sweepctl.campaign.progress import GoalRounds, build_progress
+
+    recipe, frozen = _goal_campaign()
+    progress = build_progress(recipe, frozen, None)
+    rounds = GoalRounds(recipe, frozen, _price, _even_fit, checker)
+    decisions = []
+    while rounds.reason is None:
+        for pp in progress.values():
+            for r in pp.missing():
+                pp.done[r] = _replica(pp.point, r, EVEN)
+        decisions += rounds.advance(progress)
+    return rounds, decisions, sum(pp.wanted for pp in progress.values())
+
+
+def test_goal_met_needs_the_fit_check_too():
+    from sweepctl.campaign.allocate import Check
+
+    goal = GOAL_RECIPE["goal"]["nu_halfwidth"]
+    key = "pb=0.0|po=0.0|eps=1e-06"
+
+    def agree(data, symmetric):
+        return Check(2.6, 2.6 - 0.5 * goal, 2.6 + 0.5 * goal)
+
+    def wide_first():
+        calls = []
+
+        def check(data, symmetric):
+            # the first check: `sweepctl fit`'s interval twice the goal (another form, or
+            # a branch, that the linearised rounds do not steer by); later ones within it
+            calls.append(data.size)
+            hw = 2.0 * goal if len(calls) == 1 else 0.5 * goal
+            return Check(2.6, 2.6 - hw, 2.6 + hw)
+
+        return check, calls
+
+    base, base_decisions, base_replicas = _run_rounds(agree)
+    assert base.reason == GOAL_MET
+    assert base_decisions[-1]["check"][key]["halfwidth"] == pytest.approx(0.5 * goal)
+    check, calls = wide_first()
+    rounds, decisions, replicas = _run_rounds(check)
+    assert rounds.reason == GOAL_MET and len(calls) == 2
+    first = next(d for d in decisions if d["check"])
+    # the linearised goal was met but the check was not: no stop, the aim tightened by
+    # goal / checked half-width = 1/2 (derived: GoalRounds' rule), replicas asked for
+    assert first["reason"] is None
+    assert first["check"][key]["halfwidth"] == pytest.approx(2.0 * goal)
+    assert first["aim_halfwidth"][key] <= 0.5 * goal + 1e-12
+    assert first["nu_halfwidth"][key] <= goal and sum(first["replicas"].values()) > 0
+    last = decisions[-1]
+    assert last["reason"] == GOAL_MET and last["check"][key]["halfwidth"] <= goal
+    assert replicas > base_replicas
+    # a replay decides the same, the check included
+    _, replayed, _ = _run_rounds(wide_first()[0])
+    assert _strip_times(replayed) == _strip_times(decisions)
+
+
 def _strip_times(decisions):
     return json.loads(json.dumps(decisions))
 

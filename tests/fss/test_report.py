@@ -13,7 +13,7 @@ from tests.campaign.helpers import cli, snapshot, write_recipe
 RECIPE = {
     "campaign": {"name": "report-test"},
     "axes": {
-        "widths": [2, 3, 4],
+        "widths": [2, 3, 4, 6],
         "couplings": [-0.3, -0.15, 0.0, 0.15, 0.3],
         "disorder": [{"p": 0.0}, {"p_block": 0.1, "p_open": 0.05}],
         "epsilon": [1e-6, 1e-3],
