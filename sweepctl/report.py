@@ -14,7 +14,7 @@ from sweepctl.fss.criteria import CRITERION_TEXT, leading_order
 from sweepctl.fss.fit import QUANTITIES, Fit, ScalingData
 from sweepctl.fss.procedure import Outcome
 from sweepctl.fss.regularisation import FlatRow, describe_range
-from sweepctl.fss.scan import ScanRow
+from sweepctl.fss.scan import SCAN_MIN_WIDTHS, ScanRow
 
 LABELS = {"nu": "ν", "y": "y", "x_c": "x_c", "Gamma_c": "Γ_c"}
 
@@ -492,14 +492,16 @@ def words(o: Outcome) -> list[str]:
     ruled = _ruled_out_words(o)
     if not o.acceptable:
         what = (
-            f"orders up to {o.max_orders.label()} at every N_min"
+            f"orders up to {o.max_orders.label()} at every N_min leaving {SCAN_MIN_WIDTHS} or "
+            "more widths"
             if o.mode == "scan"
             else o.rows[0].model.describe()
         )
         return [
             f"no acceptable form: {what} gave no fit with p ≥ 0.1 (and no parameter on a "
-            "bound) that is stable when the smallest widths are dropped; no ν or Γ_c is "
-            "reported. The attempts are listed; add widths or points, or raise the orders.",
+            "bound) that is stable when the smallest widths are dropped and determines ν; "
+            "no ν or Γ_c is reported. The attempts and the effective exponents of adjacent "
+            "widths are listed; add widths or points, or raise the orders.",
             *ruled,
         ]
     b = o.best
