@@ -9,10 +9,9 @@ from __future__ import annotations
 import json
 
 import pytest
-from scipy import stats
 
-from sweepctl import analysis
 from tests.campaign.helpers import cli, write_recipe
+from tests.fss.duality import self_duality
 
 RECIPE = {
     "campaign": {"name": "nu-check", "entropy": "0x7e57_0000_0000_0000_0000_0000_0000_00a1"},
@@ -59,21 +58,9 @@ def test_clean_network_data_are_self_dual(clean_fit):
     # Γ(N, −x) in distribution, so the stored pairs differ only by their errors. This
     # checks the kernel's numbers directly, without a scaling form.
     store, _, _, _ = clean_fit
-    df = analysis.load(store)
-    chi2, pairs = 0.0, 0
-    for _, g in df.groupby("N"):
-        by_x = {
-            round(float(x), 9): (G, e)
-            for x, G, e in zip(g["x"], g["Gamma"], g["Gamma_err"], strict=True)
-        }
-        for x, (G, e) in by_x.items():
-            if x > 0:
-                G2, e2 = by_x[-x]
-                chi2 += (G - G2) ** 2 / (e**2 + e2**2)
-                pairs += 1
+    chi2, pairs, p = self_duality(store)
     assert pairs == 16
     # a two-sided χ² test at the 0.1 % level (fixed before the run)
-    p = stats.chi2.sf(chi2, pairs)
     assert 1e-3 < p < 1 - 1e-3, (chi2, pairs, p)
 
 
