@@ -503,9 +503,14 @@ def test_goal_rounds_give_up_separating_after_a_few_rounds():
         f = _even_fit(data, symmetric)
         return f, (dataclasses.replace(f, theta=f.theta + 1e-4),)
 
+    def agree(data, symmetric):  # the goal check passes: this test is the separation's
+        from sweepctl.campaign.allocate import Check
+
+        return Check(2.6, 2.58, 2.62)
+
     recipe, frozen = _goal_campaign()
     progress = build_progress(recipe, frozen, None)
-    rounds = GoalRounds(recipe, frozen, _price, shadowed)
+    rounds = GoalRounds(recipe, frozen, _price, shadowed, agree)
     decisions = []
     while rounds.reason is None and len(decisions) < 30:
         for pp in progress.values():
