@@ -86,7 +86,7 @@ from sweepctl.fss.procedure import (
     stable_forms,
 )
 from sweepctl.fss.procedure import run as run_procedure
-from sweepctl.fss.scan import P_ACCEPT, Z95, determines_nu
+from sweepctl.fss.scan import SCAN_MIN_WIDTHS, Z95, determines_nu
 
 __all__ = [
     "BUDGET_SPENT",
@@ -105,6 +105,12 @@ __all__ = [
 GOAL_MET = "goal met"
 BUDGET_SPENT = "budget spent"
 NO_IMPROVEMENT = "no point can improve it"
+#: the goal check (progress.GoalRounds) failed CHECK_STALLS times in a row without its
+#: budget narrowing by CHECK_NARROWING: more replicas on the steering form do not shrink
+#: what `sweepctl fit` reports (a gap between forms, or no acceptable form)
+CHECK_STALLED = "sweepctl fit's interval does not narrow"
+CHECK_STALLS = 3
+CHECK_NARROWING = 0.9
 
 #: a round aims at Var(ν) ≤ (goal/z₉₅)²/MARGIN: the same 20 % head-room the per-point
 #: rule (:func:`~sweepctl.campaign.plan.next_target`) gives its replica counts
@@ -214,13 +220,13 @@ def fit_slice_branches(data: ScalingData, symmetric: bool) -> tuple[Fit | None, 
     whose admissible minima overlaps the choice's ν interval. Deterministic (fixed
     design seeds), so a replay of the rounds fits the same forms.
     """
-    if len(data.widths()) < 2:
+    if len(data.widths()) < SCAN_MIN_WIDTHS:
         return None, ()
     # the forms `sweepctl fit` may report: stable, with a minimum that is acceptable and
     # not ruled out by leading-order dominance ([M8]); each steered by its best such one
     rows = []
     for r in stable_forms(data, symmetric, MAX_ORDERS):
-        ok = [f for f in (r.minima or [r.fit]) if admissible(f)]
+        ok = [f for f in (r.minima or [r.fit]) if admissible(f) and determines_nu(f)]
         if ok:
             rows.append((r, ok))
     if not rows:
@@ -260,7 +266,7 @@ class Check:
 
     @property
     def halfwidth(self) -> float:
-        """Half the headline interval's width (infinite without an acceptable form)."""
+        """Half the budget's width (infinite without an acceptable form)."""
         w = 0.5 * (self.hi - self.lo)
         return w if math.isfinite(w) else math.inf
 
@@ -285,17 +291,13 @@ def check_slice(data: ScalingData, symmetric: bool) -> Check:
     settings (:func:`sweepctl.fss.procedure.run`): the check a linearised "goal met" must
     pass. Deterministic (fixed resampling seed), so a replay repeats it."""
     nan = math.nan
-    if len(data.widths()) < 2:
+    if len(data.widths()) < SCAN_MIN_WIDTHS:
         return Check(nan, nan, nan)
     out = run_procedure(data, symmetric=symmetric, resamples=CHECK_RESAMPLES, seed=CHECK_SEED)
     if not out.acceptable:
         return Check(nan, nan, nan)
     lo, hi = out.nu_budget()
     return Check(out.best.values()["nu"], lo, hi)
-
-
-def _acceptable(f: Fit) -> bool:
-    return f.p_value >= P_ACCEPT and not f.at_bound
 
 
 def slice_data(points: tuple[PointState, ...] | list[PointState]) -> ScalingData:
@@ -404,7 +406,8 @@ class Allocation:
 
     ``wanted`` maps point keys to a count ≥ the prefix's; ``reason`` is None while the
     round schedules something, else one of :data:`GOAL_MET`, :data:`BUDGET_SPENT`,
-    :data:`NO_IMPROVEMENT`.  ``halfwidth`` / ``projected`` are each slice's linearised
+    :data:`NO_IMPROVEMENT` (or, from the goal rounds' check, :data:`CHECK_STALLED`).
+    ``halfwidth`` / ``projected`` are each slice's linearised
     95 % half-width of ν now and after the round (NaN for a slice without a fit).
     """
 

@@ -155,8 +155,8 @@ def audit_store(store: Store) -> AuditReport:
 #: to rounding (floats from fits, in case the replaying machine's BLAS rounds otherwise)
 _EXACT = ("reason", "forms", "replicas")
 _CLOSE = ("nu", "nu_halfwidth", "projected_halfwidth", "cpu_seconds_spent", "cpu_seconds_round")
-#: compared to rounding where the logged event has them (events logged before the goal
-#: check have neither)
+#: compared to rounding (events logged before the goal check have neither and are not
+#: replayed)
 _CLOSE_IF_LOGGED = ("aim_halfwidth", "check")
 
 
@@ -182,12 +182,20 @@ def replay_allocations(store: Store, rep: AuditReport) -> None:
             "(made before they were frozen, or never run with a calibration)"
         )
         return
-    rounds = GoalRounds(recipe, frozen, lambda pp: replica_price(frozen, None, pp))
-    replayed = {d["round"]: d for d in rounds.advance(progress)}
     logged: dict[int, list[dict]] = {}
     for e in store.read_events():
         if e.get("event") == "allocation" and isinstance(e.get("round"), int):
             logged.setdefault(e["round"], []).append(e)
+    if any("aim_halfwidth" not in e for es in logged.values() for e in es):
+        # decided by an earlier sweepctl, before the goal check and the three-width
+        # windows: today's rules would decide otherwise, which is not a problem of the store
+        rep.warnings.append(
+            "allocation events not replayed: they were logged by an earlier sweepctl "
+            "(before the goal check); a run with this version decides the next rounds"
+        )
+        return
+    rounds = GoalRounds(recipe, frozen, lambda pp: replica_price(frozen, None, pp))
+    replayed = {d["round"]: d for d in rounds.advance(progress)}
     bad: list[str] = []
     for r in sorted(logged):
         want = replayed.get(r)
@@ -200,7 +208,9 @@ def replay_allocations(store: Store, rep: AuditReport) -> None:
                 break
             diff = [k for k in _EXACT if e.get(k) != want[k]]
             diff += [k for k in _CLOSE if not _close(e.get(k), want[k])]
-            diff += [k for k in _CLOSE_IF_LOGGED if k in e and not _close(e[k], want.get(k))]
+            # the check's bounds are percentiles of resampled refits: looser (another
+            # BLAS rounds each refit otherwise)
+            diff += [k for k in _CLOSE_IF_LOGGED if k in e and not _close(e[k], want.get(k), 1e-6)]
             if diff:
                 bad.append(
                     f"allocation round {r}: the logged {', '.join(diff)} differ from the "
@@ -226,13 +236,13 @@ def replay_allocations(store: Store, rep: AuditReport) -> None:
     }
 
 
-def _close(a, b) -> bool:
+def _close(a, b, rel: float = 1e-9) -> bool:
     if isinstance(a, dict) and isinstance(b, dict):
-        return a.keys() == b.keys() and all(_close(a[k], b[k]) for k in a)
+        return a.keys() == b.keys() and all(_close(a[k], b[k], rel) for k in a)
     if isinstance(a, (list, tuple)) and isinstance(b, (list, tuple)):
-        return len(a) == len(b) and all(_close(x, y) for x, y in zip(a, b, strict=True))
+        return len(a) == len(b) and all(_close(x, y, rel) for x, y in zip(a, b, strict=True))
     if isinstance(a, (int, float)) and isinstance(b, (int, float)):
-        return abs(a - b) <= 1e-9 * max(abs(a), abs(b), 1e-300)
+        return abs(a - b) <= rel * max(abs(a), abs(b), 1e-300)
     return a == b
 
 

@@ -12,6 +12,7 @@ the prefixes round k − 1 wanted, so replaying from stored rows repeats every d
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -197,6 +198,10 @@ def fit_slice_key(point: Point) -> str:
     return f"pb={point.p_block!r}|po={point.p_open!r}|eps={point.epsilon!r}"
 
 
+#: the tightest linearised aim, as a fraction of the goal, that a failed check may set
+MIN_AIM = 1e-3
+
+
 class GoalRounds:
     """Campaign-wide rounds of a recipe with a goal (module docstring).
 
@@ -215,7 +220,11 @@ class GoalRounds:
     tightened — by goal/checked half-width, and at least below its current linearised
     half-width — and the same round is decided again with that aim, so more replicas go
     where the linearised design says ν's interval shrinks most. The aims are a pure
-    function of the prefixes, as every other decision.
+    function of the prefixes, as every other decision. When :data:`~sweepctl.campaign.
+    allocate.CHECK_STALLS` failed checks in a row leave the budget no narrower (by
+    ``CHECK_NARROWING``), more replicas on the steering form are not shrinking what
+    ``fit`` reports (a gap between forms, or no acceptable form): the campaign stops with
+    :data:`~sweepctl.campaign.allocate.CHECK_STALLED`.
     """
 
     def __init__(
@@ -240,6 +249,10 @@ class GoalRounds:
         self.aim: dict[str, float] = {}
         #: per slice, the last check (:class:`~sweepctl.campaign.allocate.Check`)
         self.checks: dict = {}
+        #: per slice, the budget half-width of the last failed check, and how many failed
+        #: checks in a row have not narrowed it (CHECK_STALLS of them stop the campaign)
+        self.failed_checks: dict[str, float] = {}
+        self.stalls: dict[str, int] = {}
         #: rounds decided so far (round 0 is every point's first round)
         self.round = 0
         #: why the campaign stopped (``allocate``'s reason), or None
@@ -250,6 +263,9 @@ class GoalRounds:
     def advance(self, progress: dict[str, PointProgress]) -> list[dict]:
         """Decide every round whose prefixes are complete; the decisions as events."""
         from sweepctl.campaign.allocate import (
+            CHECK_NARROWING,
+            CHECK_STALLED,
+            CHECK_STALLS,
             GOAL_MET,
             SEPARATION_ROUNDS,
             PointState,
@@ -304,13 +320,26 @@ class GoalRounds:
                     checked[s.key] = self.checker(slice_data(s.points), symmetric)
                 self.checks.update(checked)
                 failed = [s for s in slices if not checked[s.key].halfwidth <= goal]
-                if failed:
+                for s in failed:
+                    # a failed check whose budget did not narrow since the last failed one
+                    h, last = checked[s.key].halfwidth, self.failed_checks.get(s.key)
+                    narrowed = last is not None and h < CHECK_NARROWING * last
+                    stalls = 0 if last is None or narrowed else self.stalls.get(s.key, 0) + 1
+                    self.stalls[s.key] = stalls
+                    self.failed_checks[s.key] = h
+                if any(self.stalls.get(s.key, 0) >= CHECK_STALLS for s in failed):
+                    a = dataclasses.replace(a, reason=CHECK_STALLED)
+                elif failed:
                     for s in failed:
                         h = checked[s.key].halfwidth
                         now = self.aim.get(s.key, 1.0)
-                        tighter = now * goal / h if math.isfinite(h) else 0.5 * now
-                        below = 0.99 * a.halfwidth[s.key] / goal
-                        self.aim[s.key] = min(tighter, below) if math.isfinite(below) else tighter
+                        lin = a.halfwidth[s.key] / goal
+                        # no acceptable form: aim at about twice the replicas (the
+                        # half-width scales as 1/√replicas); else by goal / budget
+                        tighter = now * goal / h if math.isfinite(h) else 0.7 * lin
+                        below = 0.99 * lin
+                        aim = min(tighter, below) if math.isfinite(below) else 0.5 * now
+                        self.aim[s.key] = max(aim, MIN_AIM)
                     slices = [
                         SliceState(
                             s.key,

@@ -678,11 +678,12 @@ def _goal(src: str, g: dict, widths: list[int], couplings: tuple[float, ...]) ->
     if not hours > 0.0:
         raise RecipeError("goal.cpu_hours", g["cpu_hours"], _GOAL_FIX["cpu_hours"], src)
     # ν comes from a scaling fit of each slice: it needs sizes and couplings to scale
-    if len(widths) < 2:
+    if len(widths) < 3:
         raise RecipeError(
             "axes.widths",
             widths,
-            "a goal on nu needs a scaling fit over at least 2 widths; add a width or remove [goal]",
+            "a goal on nu needs a scaling fit over at least 3 widths (with two, nu is only "
+            "an effective exponent); add widths or remove [goal]",
             src,
         )
     if len(couplings) < 3:

@@ -68,6 +68,7 @@ from sweepctl.fss.scan import (
     Z95,
     ScanRow,
     candidate_models,
+    determines_nu,
     stable_windows,
 )
 
@@ -204,7 +205,14 @@ class Outcome:
         return (min(p[0] for p in parts), max(p[1] for p in parts))
 
     def _spread_fits(self) -> list[Fit]:
-        return [f for r in self.stable_forms for f in _row_fits(r) if _admissible(f)]
+        # a minimum that does not determine ν (its interval leaves 0.5–6) says nothing
+        # about ν's spread or budget
+        return [
+            f
+            for r in self.stable_forms
+            for f in _row_fits(r)
+            if _admissible(f) and determines_nu(f)
+        ]
 
     def model_spread(self, q: str) -> tuple[float, float]:
         """Range of ``q`` over the acceptable minima of the stable forms (step 4)."""

@@ -375,10 +375,14 @@ def test_goal_rounds_replay_the_same_decisions_from_any_stored_prefix():
     assert missing == {(k, r) for k, r, _ in stored[cut : ends[1]]}
 
 
-def _run_rounds(checker):
+def _run_rounds(checker, cpu_hours: float | None = None):
     from sweepctl.campaign.progress import GoalRounds, build_progress
 
     recipe, frozen = _goal_campaign()
+    if cpu_hours is not None:
+        recipe = dataclasses.replace(
+            recipe, goal=dataclasses.replace(recipe.goal, cpu_hours=cpu_hours)
+        )
     progress = build_progress(recipe, frozen, None)
     rounds = GoalRounds(recipe, frozen, _price, _even_fit, checker)
     decisions = []
@@ -430,6 +434,28 @@ def test_goal_met_needs_the_fit_check_too():
     # a replay decides the same, the check included
     _, replayed, _ = _run_rounds(wide_first()[0])
     assert _strip_times(replayed) == _strip_times(decisions)
+
+
+def test_a_check_that_never_narrows_stops_the_campaign():
+    # `sweepctl fit` finds no acceptable form however many replicas the linearised rounds
+    # add: the campaign stops after CHECK_STALLS failed checks in a row that did not
+    # narrow (the first failure sets the mark), instead of spending the whole budget
+    from sweepctl.campaign.allocate import CHECK_STALLED, CHECK_STALLS, Check
+
+    calls = []
+
+    def never(data, symmetric):
+        calls.append(data.size)
+        return Check(math.nan, math.nan, math.nan)
+
+    rounds, decisions, _ = _run_rounds(never, cpu_hours=1e4)
+    assert rounds.reason == CHECK_STALLED and decisions[-1]["reason"] == CHECK_STALLED
+    assert len(calls) == CHECK_STALLS + 1
+    checked = [d for d in decisions if d["check"]]
+    assert len(checked) == CHECK_STALLS + 1
+    # between checks the rounds kept adding replicas (each failure tightened the aim)
+    assert all(sum(d["replicas"].values()) > 0 for d in checked[:-1])
+    assert not decisions[-1]["replicas"]
 
 
 def _strip_times(decisions):

@@ -83,6 +83,11 @@ BAD = [
         {"axes": {"widths": [2]}, "goal": {"nu_halfwidth": 0.05, "cpu_hours": 10}},
         "axes.widths",
     ),
+    (
+        "goal-two-widths",  # two widths give only an effective exponent
+        {"axes": {"widths": [2, 4]}, "goal": {"nu_halfwidth": 0.05, "cpu_hours": 10}},
+        "at least 3 widths",
+    ),
     # syntax errors lead with line and column; a file problem names the file once
     ("unreadable-toml", "raw:[axes\nwidths = [4", "line 1, column 6: TOML syntax"),
     ("not-utf8", "bytes", "not UTF-8"),
