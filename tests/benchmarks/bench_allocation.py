@@ -27,7 +27,9 @@ Both use the same *form rule* (how the slice's form is chosen each round):
 
 Both stop only when the goal check passes as well (:class:`sweepctl.campaign.progress.
 GoalRounds`: ``sweepctl fit``'s own headline interval within the goal); a uniform run
-still short of it at ``UNIFORM_CENSOR_HOURS`` is stopped and marked censored.
+still short of it at ``CENSOR_HOURS`` (the fit-aware recipe's budget) is stopped and
+marked censored. Uniform, like the driver, stops separating alternatives after
+``SEPARATION_ROUNDS`` levels with the half-width within the goal.
 
 Coverage: the fraction of seeds whose final ``sweepctl fit`` interval (the check's
 headline interval, resampled, every branch) holds the law's ν; a run that ends without
@@ -67,6 +69,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 from sweepctl.campaign.allocate import (
     GOAL_MET,
     MARGIN,
+    SEPARATION_ROUNDS,
     PointState,
     SliceDesign,
     SliceState,
@@ -84,9 +87,10 @@ from sweepctl.campaign.summary import store_recipe
 from sweepctl.fss.fit import Fit, FitError, ScalingData, explore
 from sweepctl.fss.procedure import (
     DEFAULT_MAX_ORDERS,
+    admissible,
     stable_forms,
 )
-from sweepctl.fss.scan import P_ACCEPT
+from sweepctl.fss.scan import determines_nu
 
 #: the rehearsal law: even in ρ like the clean network, with the ρ⁴ term the fewest-
 #: parameter forms lack (the law of recipes/rehearsal.toml without its correction)
@@ -97,8 +101,9 @@ REPLICA = {"layers": 2000, "warmup": 64, "strips": 16, "initial": 4}
 #: a loose floor: 4 replicas of 16 strips (the 51 strip values an error bar needs) meet it
 FLOOR = 0.2
 ENTROPY0 = 0xA110C_BE4C_0000
-#: a uniform run still short of the goal is stopped here (censored: a lower bound)
-UNIFORM_CENSOR_HOURS = 200.0
+#: either run still short of the goal is stopped here (censored: its CPU a lower bound);
+#: for fit-aware it is the recipe's [goal] cpu_hours
+CENSOR_HOURS = 200.0
 
 
 def recipe_dict(entropy: int, goal: float, *, target: float = FLOOR, with_goal: bool = True):
@@ -110,7 +115,7 @@ def recipe_dict(entropy: int, goal: float, *, target: float = FLOOR, with_goal: 
         "model": dict(LAW),
     }
     if with_goal:
-        d["goal"] = {"nu_halfwidth": goal, "cpu_hours": 1e6}
+        d["goal"] = {"nu_halfwidth": goal, "cpu_hours": CENSOR_HOURS}
     return d
 
 
@@ -118,7 +123,9 @@ def recipe_dict(entropy: int, goal: float, *, target: float = FLOOR, with_goal: 
 
 
 def _acceptable(f: Fit) -> bool:
-    return f.p_value >= P_ACCEPT and not f.at_bound
+    """What the driver's fitter accepts: admissible (p ≥ 0.1, no bound, not ruled out by
+    leading-order dominance) and determining ν."""
+    return admissible(f) and determines_nu(f)
 
 
 class WidestRule:
@@ -141,8 +148,11 @@ class FewestRule:
     def __call__(self, data: ScalingData, symmetric: bool) -> Fit | None:
         if len(data.widths()) < 2:
             return None
-        rows = stable_forms(data, symmetric, DEFAULT_MAX_ORDERS)
-        return rows[0].fit if rows else None
+        for r in stable_forms(data, symmetric, DEFAULT_MAX_ORDERS):
+            ok = [f for f in (r.minima or [r.fit]) if _acceptable(f)]
+            if ok:
+                return ok[0]
+        return None
 
 
 class FrozenRule:
@@ -271,7 +281,7 @@ def uniform(seed: int, goal: float, rule: str, cost: CostModel) -> Outcome:
         for r in range(pp.wanted):
             pp.done[r] = _draw(frozen, model, pp.point, r)
     t = max(pp.rel_err() for pp in progress.values())
-    rounds = 0
+    rounds = separating = 0
     while True:
         rounds += 1
         pts = _slice_states(progress, price)
@@ -283,17 +293,18 @@ def uniform(seed: int, goal: float, rule: str, cost: CostModel) -> Outcome:
             hw = d.halfwidth()
             # as for the goal rounds: the goal needs every alternative separated, and
             # then `sweepctl fit`'s own interval within it (the goal check)
-            if hw <= goal and not d.unseparated().any():
+            if hw <= goal and d.unseparated().any() and separating < SEPARATION_ROUNDS:
+                separating += 1  # as the driver: a few levels for the alternatives
+                t /= math.sqrt(2.0)
+            elif hw <= goal:
                 check = check_slice(slice_data(pts), symmetric)
                 if check.halfwidth <= goal:
                     reason = "goal met"
                     break
                 h = check.halfwidth if math.isfinite(check.halfwidth) else 2 * goal
                 t *= min(max(goal / (h * math.sqrt(MARGIN)), 0.5), 0.99)
-            elif hw > goal:
+            else:
                 t *= min(max(goal / (hw * math.sqrt(MARGIN)), 0.5), 0.99)
-            else:  # only the alternatives are left: twice the replicas
-                t /= math.sqrt(2.0)
         else:
             t /= math.sqrt(2.0)
         for pp in progress.values():  # the per-point rule at target t
@@ -306,14 +317,12 @@ def uniform(seed: int, goal: float, rule: str, cost: CostModel) -> Outcome:
                     pp.done[r] = _draw(frozen, model, pp.point, r)
                 pp.wanted = want
         cpu = sum(price(pp) * len(pp.done) for pp in progress.values())
-        if rounds > 40 or cpu > UNIFORM_CENSOR_HOURS * 3600.0:
+        if rounds > 40 or cpu > CENSOR_HOURS * 3600.0:
             # censored: its CPU is a lower bound; its interval what `fit` says now
             pts = _slice_states(progress, price)
             check = check_slice(slice_data(pts), symmetric)
             reason = "censored"
             break
-    else:  # pragma: no cover - the loop only ends by break
-        pass
     cpu = sum(price(pp) * len(pp.done) for pp in progress.values())
     return Outcome(
         "uniform",
@@ -392,12 +401,10 @@ def rehearsal_table(seeds, goal, rules, cal, processes) -> dict:
                 "forms": _count(r.form for r in rs),
                 "reasons": _count(r.reason for r in rs),
             }
-        ratios = np.array(
-            [
-                u.cpu_seconds / a.cpu_seconds
-                for u, a in zip(by["uniform"], by["fit-aware"], strict=True)
-            ]
-        )
+        pairs = list(zip(by["uniform"], by["fit-aware"], strict=True))
+        ratios = np.array([u.cpu_seconds / a.cpu_seconds for u, a in pairs])
+        # seeds where both met the goal: their ratio is exact (a censored run's is a bound)
+        met = np.array([u.reason == a.reason == GOAL_MET for u, a in pairs])
         for s in ("uniform", "fit-aware"):
             r = rows[s]
             tail = ""
@@ -413,7 +420,17 @@ def rehearsal_table(seeds, goal, rules, cal, processes) -> dict:
             )
         for s in ("uniform", "fit-aware"):
             print(f"{'':8} {s:10} forms {rows[s]['forms']}  stops {rows[s]['reasons']}")
-        out[rule] = rows | {"ratio_median": float(np.median(ratios))}
+        if met.any():
+            print(
+                f"{'':8} ratio where both met the goal ({int(met.sum())} of {met.size} seeds): "
+                f"median {np.median(ratios[met]):.2f}, smallest {np.min(ratios[met]):.2f}"
+            )
+        out[rule] = rows | {
+            "ratio_median": float(np.median(ratios)),
+            "ratio_median_both_met": float(np.median(ratios[met])) if met.any() else None,
+            "ratio_min_both_met": float(np.min(ratios[met])) if met.any() else None,
+            "both_met": int(met.sum()),
+        }
     return out
 
 
@@ -470,7 +487,7 @@ def _store_fit(store: Path, goal: float, rule: str, cal: list[dict]):
     hw = math.inf if f is None else SliceDesign(SliceState("s", tuple(pts), f, goal)).halfwidth()
     cpu = float(np.sum(rows.column("cpu_seconds").to_numpy()))
     # what `sweepctl fit` prints for the store (the goal check): coverage is judged on it
-    check = check_slice(slice_data(pts), True) if f is not None and hw <= goal else None
+    check = check_slice(slice_data(pts), True)
     return f, hw, cpu, check
 
 
@@ -493,8 +510,14 @@ def network_table(seeds, goal, rule, cal_path: Path, cal, censor: float = 10.0) 
             t0 = time.time()
             _sweepctl("run", rec, tmp / "fa", "--workers", "2", "--calibration", cal_path)
             f, hw, cpu, c = _store_fit(tmp / "fa", goal, rule, cal)
-            out.append(("fit-aware", seed, cpu, f, hw, time.time() - t0, False, c))
-            print(f"  seed {seed} fit-aware: {cpu / 3600:.4f} CPU-h, {_said(f, hw, c)}", flush=True)
+            stops = [e for e in Store(tmp / "fa").read_events() if e.get("event") == "allocation"]
+            reason = stops[-1]["reason"] if stops else None
+            fa_censored = reason != GOAL_MET  # stopped by its budget, or otherwise
+            out.append(("fit-aware", seed, cpu, f, hw, time.time() - t0, fa_censored, c))
+            print(
+                f"  seed {seed} fit-aware: {cpu / 3600:.4f} CPU-h, {_said(f, hw, c)} ({reason})",
+                flush=True,
+            )
             # uniform: the same store tightened level by level (the pilot is shared)
             t, t0, censored = None, time.time(), False
             for _ in range(30):
@@ -508,6 +531,8 @@ def network_table(seeds, goal, rule, cal_path: Path, cal, censor: float = 10.0) 
                 if cpuu > censor * cpu:
                     censored = True
                     break
+            else:  # thirty levels without the goal
+                censored = True
                 if t is None:
                     t = _max_rel_err(tmp / "un")
                 if fu is None:
@@ -614,7 +639,7 @@ def main() -> None:
                     f"{s:10} CPU-h mean {np.mean([r['cpu_hours'] for r in rs]):.4f}  "
                     f"coverage of {NU_REFERENCE}: "
                     f"{sum(r['covers_reference'] for r in rs)}/{len(rs)}"
-                    + (f", {sum(r['censored'] for r in rs)} censored" if s == "uniform" else "")
+                    + f", {sum(r['censored'] for r in rs)} censored"
                 )
         if args.json:
             args.json.write_text(json.dumps(result, indent=1, default=str))
