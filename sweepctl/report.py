@@ -552,13 +552,13 @@ def words(o: Outcome) -> list[str]:
             f"Model choice: {len(o.stable_forms)} stable forms give ν from {lo:.3f} to "
             f"{hi:.3f}{extra}."
         )
-        blo, bhi = o.nu_budget()
-        if blo < slo or bhi > shi:
-            out.append(
-                f"With the choice of form: ν in [{blo:.3f}, {bhi:.3f}], the hull of the "
-                "headline interval and the 95 % intervals of those forms (the interval to "
-                "quote when the forms' intervals differ)."
-            )
+    blo, bhi = o.nu_budget()
+    if blo < slo or bhi > shi:
+        out.append(
+            f"With the choice of form: ν in [{blo:.3f}, {bhi:.3f}], the hull of the "
+            "headline interval and the 95 % intervals of the stable forms near it (the "
+            "interval to quote when the forms' intervals differ)."
+        )
     if o.sensitivity_reason:
         ok = o.sensitivity_fits()
         out.append(

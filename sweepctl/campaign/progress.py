@@ -216,10 +216,12 @@ class GoalRounds:
     round finds every slice's linearised half-width within the goal, ``checker(data,
     symmetric)`` (default :func:`~sweepctl.campaign.allocate.check_slice`: the full
     procedure of ``sweepctl fit``) is run on each slice; the goal is met only if each
-    headline half-width is within it too. A slice that fails has its linearised aim
-    tightened — by goal/checked half-width, and at least below its current linearised
-    half-width — and the same round is decided again with that aim, so more replicas go
-    where the linearised design says ν's interval shrinks most. The aims are a pure
+    budget half-width (:meth:`~sweepctl.fss.procedure.Outcome.nu_budget`) is within it
+    too. A slice that fails has its linearised aim tightened — by goal/checked
+    half-width, and at least below its current linearised half-width (about twice the
+    replicas when ``fit`` finds no form) — and the same round is decided again with
+    that aim, so more replicas go where the linearised design says ν's interval shrinks
+    most. The aims are a pure
     function of the prefixes, as every other decision. When :data:`~sweepctl.campaign.
     allocate.CHECK_STALLS` failed checks in a row leave the budget no narrower (by
     ``CHECK_NARROWING``), more replicas on the steering form are not shrinking what

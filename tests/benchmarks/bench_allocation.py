@@ -26,13 +26,14 @@ Both use the same *form rule* (how the slice's form is chosen each round):
   N_min for the rest of the campaign.
 
 Both stop only when the goal check passes as well (:class:`sweepctl.campaign.progress.
-GoalRounds`: ``sweepctl fit``'s own headline interval within the goal); a uniform run
+GoalRounds`: ``sweepctl fit``'s own budget, ``nu_budget``, within the goal); a uniform run
 still short of it at ``CENSOR_HOURS`` (the fit-aware recipe's budget) is stopped and
 marked censored. Uniform, like the driver, stops separating alternatives after
 ``SEPARATION_ROUNDS`` levels with the half-width within the goal.
 
 Coverage: the fraction of seeds whose final ``sweepctl fit`` interval (the check's
-headline interval, resampled, every branch) holds the law's ν; a run that ends without
+budget: the resampled headline interval, every branch, the nearby stable forms) holds
+the law's ν; a run that ends without
 an acceptable form does not cover. Its binomial standard error is printed beside it.
 
 Part 1 simulates in process on the rehearsal model (the worker's own draw, the same

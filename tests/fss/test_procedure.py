@@ -214,3 +214,8 @@ def test_the_budget_holds_nu_where_the_fewest_parameter_form_is_biased():
     assert any(r.model.orders == Orders(4, 0, 1, 0) for r in out.stable_forms)
     blo, bhi = out.nu_budget()
     assert blo <= 2.6 <= bhi and blo <= lo and hi <= bhi
+    # and the reader is told: in words and in the JSON
+    from sweepctl.report import outcome_summary, words
+
+    assert any(w.startswith("With the choice of form") for w in words(out))
+    assert outcome_summary(out)["nu_budget"] == [blo, bhi]
