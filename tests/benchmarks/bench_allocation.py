@@ -532,8 +532,6 @@ def network_table(seeds, goal, rule, cal_path: Path, cal, censor: float = 10.0) 
                 if cpuu > censor * cpu:
                     censored = True
                     break
-            else:  # thirty levels without the goal
-                censored = True
                 if t is None:
                     t = _max_rel_err(tmp / "un")
                 if fu is None:
@@ -542,15 +540,13 @@ def network_table(seeds, goal, rule, cal_path: Path, cal, censor: float = 10.0) 
                     h = hwu if cu is None else max(hwu, cu.halfwidth)
                     h = h if math.isfinite(h) else 2 * goal
                     t *= min(max(goal / (h * math.sqrt(MARGIN)), 0.5), 0.99)
+            else:  # thirty levels without the goal
+                censored = True
             out.append(("uniform", seed, cpuu, fu, hwu, time.time() - t0, censored, cu))
             print(
                 f"  seed {seed} uniform:   {'≥ ' if censored else ''}{cpuu / 3600:.4f} CPU-h, "
                 + _said(fu, hwu, cu)
-                + (
-                    f" (stopped at {censor:g}× the fit-aware CPU, goal not reached)"
-                    if censored
-                    else ""
-                ),
+                + (" (stopped short of the goal: censored)" if censored else ""),
                 flush=True,
             )
     return out
