@@ -612,7 +612,7 @@ def run(
     if res.interrupted:
         console.print(
             f"interrupted — run the same command again to continue: "
-            f"sweepctl run {recipe} --store {store}"
+            f"sweepctl run {recipe} {store}"
         )
         raise typer.Exit(130)
     if res.failed:
