@@ -611,8 +611,7 @@ def run(
         console.print(f"goal on nu: {res.goal_reason}")
     if res.interrupted:
         console.print(
-            f"interrupted — run the same command again to continue: "
-            f"sweepctl run {recipe} {store}"
+            f"interrupted — run the same command again to continue: sweepctl run {recipe} {store}"
         )
         raise typer.Exit(130)
     if res.failed:
