@@ -43,7 +43,10 @@ def test_zero_from_a_range_is_the_critical_point_itself():
 
 
 def test_a_goal_is_read_and_kept_in_the_canonical_form():
-    text = recipe_text({"goal": {"nu_halfwidth": 0.05, "cpu_hours": 2000}})
+    # a goal needs three widths (two give only an effective exponent)
+    text = recipe_text(
+        {"axes": {"widths": [2, 3, 4]}, "goal": {"nu_halfwidth": 0.05, "cpu_hours": 2000}}
+    )
     r = parse_recipe(tomllib.loads(text))
     assert r.goal == Goal(nu_halfwidth=0.05, cpu_hours=2000.0)
     # the recipe recorded in a store gives the goal back
