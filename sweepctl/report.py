@@ -338,6 +338,12 @@ def outcome_summary(o: Outcome) -> dict:
             {"N1": e.N1, "N2": e.N2, "nu": e.nu, "err": e.err, "kind": e.kind} for e in o.effective
         ],
     }
+    d = o.dispersion
+    out["dispersion"] = (
+        None
+        if d is None
+        else {"chi2": d.chi2, "dof": d.dof, "p_value": d.p_value, "degree": d.degree}
+    )
     out["criterion"] = CRITERION_TEXT
     out["ruled_out"] = ruled_out_summary(o)
     if not o.acceptable:
@@ -487,6 +493,26 @@ def effective_rows(o: Outcome) -> list[list[str]]:
     ]
 
 
+def _dispersion_words(d) -> list[str]:
+    """What the form-free check of the error bars says, when no form is acceptable."""
+    if d is None:
+        return []
+    head = (
+        f"Without any scaling form, one polynomial of degree {d.degree} in x per width "
+        f"gives χ² = {d.chi2:.1f} for {d.dof} dof, p = {d.p_value:.3f}: "
+    )
+    if d.p_value < 0.1:
+        return [
+            head + "the points scatter beyond their error bars, so no form can reach "
+            "p ≥ 0.1 and other forms cannot cure it. More strips per point (a tighter "
+            "target) tell a fluctuation from error bars that are too small."
+        ]
+    return [
+        head + "the error bars hold width by width, so it is the forms that fail: raise "
+        "the orders, or drop the smallest widths by adding larger ones."
+    ]
+
+
 def words(o: Outcome) -> list[str]:
     """The outcome in sentences (printed by ``fit``, written into the report)."""
     ruled = _ruled_out_words(o)
@@ -502,6 +528,7 @@ def words(o: Outcome) -> list[str]:
             "bound) that is stable when the smallest widths are dropped and determines ν; "
             "no ν or Γ_c is reported. The attempts and the effective exponents of adjacent "
             "widths are listed; add widths or points, or raise the orders.",
+            *_dispersion_words(o.dispersion),
             *ruled,
         ]
     b = o.best

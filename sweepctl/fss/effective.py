@@ -22,7 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
-from sweepctl.fss.fit import ScalingData
+from sweepctl.fss.fit import ScalingData, gof_probability
 
 #: draws of the polynomial coefficients behind one error bar
 DRAWS = 400
@@ -74,6 +74,58 @@ def _width_poly(x, g, e, symmetric):
         if fitted[3] >= P_POLY:
             break
     return fitted
+
+
+@dataclass(frozen=True)
+class Dispersion:
+    """The error bars checked without a scaling form: each width's Γ(x) fitted alone."""
+
+    chi2: float
+    dof: int
+    p_value: float
+    #: the polynomial degree used per width
+    degree: int
+
+
+def dispersion(data: ScalingData, symmetric: bool) -> Dispersion | None:
+    """Whether the points scatter as their error bars say, whatever the scaling form.
+
+    Each width's Γ(x) is fitted alone by the widest polynomial :func:`_width_poly` may use
+    (even, degree 6, on a self-dual slice [K7]; degree 4 otherwise) wherever that leaves
+    two or more degrees of freedom; the χ² summed over widths is referred to its
+    distribution, with estimated variances where ``n_strips`` is given (the fit's own
+    :func:`~sweepctl.fss.fit.gof_probability`). A scaling form constrains the same
+    points further (one function of ``(x − x_c) N^{1/ν}`` for all widths), so when this
+    probability is small no form can be acceptable: the data need smaller error bars
+    that are right (more strips), not another form. ``None`` if no width has enough
+    points.
+    """
+    powers = [0, 2, 4, 6] if symmetric else [0, 1, 2, 3, 4]
+    blocks, rows, chi2 = [], [], 0.0
+    for w in data.widths():
+        m = np.flatnonzero(data.N == w)
+        if m.size < len(powers) + 2:
+            continue
+        x, g, e = data.x[m], data.Gamma[m], data.Gamma_err[m]
+        a = np.stack([x**k for k in powers], axis=1) / e[:, None]
+        coef, *_ = np.linalg.lstsq(a, g / e, rcond=None)
+        chi2 += float(np.sum((a @ coef - g / e) ** 2))
+        blocks.append(a)
+        rows.append(m)
+    if not blocks:
+        return None
+    idx = np.concatenate(rows)
+    k = sum(b.shape[1] for b in blocks)
+    design = np.zeros((idx.size, k))
+    r = c = 0
+    for b in blocks:  # block-diagonal: one polynomial per width
+        design[r : r + b.shape[0], c : c + b.shape[1]] = b
+        r += b.shape[0]
+        c += b.shape[1]
+    basis, _ = np.linalg.qr(design)
+    strips = None if data.n_strips is None else data.n_strips[idx]
+    p = gof_probability(chi2, basis, strips)
+    return Dispersion(chi2, int(idx.size - k), p, powers[-1])
 
 
 def _derivative(powers, coef, x, k):

@@ -49,7 +49,7 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 from sweepctl.fss.criteria import leading_order
-from sweepctl.fss.effective import EffectiveExponent, effective_exponents
+from sweepctl.fss.effective import Dispersion, EffectiveExponent, dispersion, effective_exponents
 from sweepctl.fss.fit import (
     NU_DESIGN,
     QUANTITIES,
@@ -133,6 +133,8 @@ class Outcome:
     sensitivity: list[ScanRow] = field(default_factory=list)
     sensitivity_reason: str = ""
     effective: list[EffectiveExponent] = field(default_factory=list)
+    #: the error bars checked width by width without a form (``effective.dispersion``)
+    dispersion: Dispersion | None = None
     #: acceptable minima of the chosen window ruled out by the criterion
     rejected_branches: list[Fit] = field(default_factory=list)
     #: stable windows passed over because every acceptable minimum was ruled out
@@ -361,6 +363,7 @@ def run(
                 r for r in passed if r.model.n_params <= choice.model.n_params + SPREAD_EXTRA_PARAMS
             ]
     out.effective = effective_exponents(data, symmetric)
+    out.dispersion = dispersion(data, symmetric)
     if out.choice is None:
         return out
     # -- branches of the chosen window, explored more thoroughly

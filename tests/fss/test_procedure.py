@@ -134,6 +134,41 @@ def test_no_acceptable_form_gives_no_headline(tmp_path):
     assert len(res["attempts"]) == 1 and res["attempts"][0]["p_value"] < 0.1
 
 
+def test_no_acceptable_form_says_whether_the_error_bars_hold(tmp_path):
+    # The form-free check behind "no acceptable form": on a table whose noise is its error
+    # bars the check passes and the words blame the form; on another draw whose noise is
+    # twice the printed error bars it fails and the words say that no form can pass.
+    # (A first version rescaled the honest draw's errors by 1/1.6; its χ² is that draw's
+    # times 2.56, and that draw's was low, 20.3 for 35 dof: independent draws test this.)
+    honest = syn.branchy(seed=1)  # orders 4,1,1,0: Γ(x) is an even degree-4 polynomial
+    noisy = syn.make_table(
+        2, syn.BRANCHY, syn.BRANCHY_THETA, syn.BRANCHY_F, syn.BRANCHY_WIDTHS, syn.BRANCHY_X, 2e-3
+    )
+    for name, table, err, words, ok in [
+        ("honest", honest, honest.Gamma_err, "the error bars hold width by width", True),
+        ("small", noisy, noisy.Gamma_err / 2, "scatter beyond their error bars", False),
+    ]:
+        df = pd.DataFrame(
+            {"N": table.N.astype(int), "x": table.x, "Gamma": table.Gamma, "Gamma_err": err}
+        )
+        df["p_block"] = df["p_open"] = 0.0
+        path = tmp_path / f"{name}.csv"
+        df.to_csv(path, index=False)
+        out = tmp_path / f"{name}.json"
+        proc = cli("fit", path, "--orders", "2,0,1,0", "--resamples", "20", "--out", out)
+        assert proc.returncode == 3, proc.stdout + proc.stderr
+        assert words in " ".join(proc.stdout.split()), proc.stdout
+        d = json.loads(out.read_text())["dispersion"]
+        # derived: 7 widths × (9 points − 4 even coefficients) = 35 dof
+        assert d["dof"] == 35 and d["degree"] == 6, d
+        if ok:
+            # noise drawn at the stated σ: p is uniform; below 1e-3 once in a thousand
+            assert d["p_value"] > 1e-3, d
+        else:
+            # derived: χ² = 4 χ²₃₅ here; p < 1e-3 needs χ² > 66.6, i.e. χ²₃₅ > 16.6 (99.6 %)
+            assert d["p_value"] < 1e-3, d
+
+
 def test_fixed_y_sensitivity_when_the_choice_has_no_irrelevant_field():
     # invented data without a correction (synthetic.CHEAP, orders 2,0,1,0): the choice has
     # no y, so y is fixed on the grid and every acceptable fit enters the ranges

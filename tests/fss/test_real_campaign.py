@@ -1,8 +1,8 @@
 """A real small campaign of the clean network (slow: ~5 minutes of CPU): self-duality of
 its numbers, and what the procedure may say of ν from widths 4–32.
 
-The published value itself needs larger widths (a stored campaign of widths 8–64, in
-progress)."""
+The published value itself needs larger widths: ``test_published_value.py`` fits a stored
+campaign of widths 8–64."""
 
 from __future__ import annotations
 
