@@ -11,6 +11,7 @@ import numpy as np
 import pandas as pd
 
 from sweepctl.fss.criteria import CRITERION_TEXT, leading_order
+from sweepctl.fss.effective import Dispersion
 from sweepctl.fss.fit import QUANTITIES, Fit, ScalingData
 from sweepctl.fss.procedure import Outcome
 from sweepctl.fss.regularisation import FlatRow, describe_range
@@ -342,7 +343,13 @@ def outcome_summary(o: Outcome) -> dict:
     out["dispersion"] = (
         None
         if d is None
-        else {"chi2": d.chi2, "dof": d.dof, "p_value": d.p_value, "degree": d.degree}
+        else {
+            "chi2": d.chi2,
+            "dof": d.dof,
+            "p_value": d.p_value,
+            "degree": d.degree,
+            "estimated_variances": d.estimated,
+        }
     )
     out["criterion"] = CRITERION_TEXT
     out["ruled_out"] = ruled_out_summary(o)
@@ -493,23 +500,25 @@ def effective_rows(o: Outcome) -> list[list[str]]:
     ]
 
 
-def _dispersion_words(d) -> list[str]:
+def _dispersion_words(d: Dispersion | None) -> list[str]:
     """What the form-free check of the error bars says, when no form is acceptable."""
     if d is None:
         return []
+    how = ", estimated variances" if d.estimated else ""
     head = (
-        f"Without any scaling form, one polynomial of degree {d.degree} in x per width "
-        f"gives χ² = {d.chi2:.1f} for {d.dof} dof, p = {d.p_value:.3f}: "
+        f"Without a scaling form, one polynomial of degree ≤ {d.degree} in x per width gives "
+        f"χ² = {d.chi2:.1f} for {d.dof} dof (p = {d.p_value:.3f}{how}): "
     )
     if d.p_value < 0.1:
         return [
-            head + "the points scatter beyond their error bars, so no form can reach "
-            "p ≥ 0.1 and other forms cannot cure it. More strips per point (a tighter "
-            "target) tell a fluctuation from error bars that are too small."
+            head + "the points scatter more than their error bars suggest even there, which "
+            "pulls every form's p down. Before raising the orders, run more strips per "
+            "point (a tighter target): that tells a fluctuation from error bars that are "
+            "too small."
         ]
     return [
-        head + "the error bars hold width by width, so it is the forms that fail: raise "
-        "the orders, or drop the smallest widths by adding larger ones."
+        head + "the error bars are consistent with the points width by width, so the forms "
+        "are what fails: raise the orders, or add larger widths."
     ]
 
 

@@ -83,28 +83,53 @@ class Dispersion:
     chi2: float
     dof: int
     p_value: float
-    #: the polynomial degree used per width
+    #: the highest polynomial degree used for a width
     degree: int
+    #: whether ``p_value`` allows for estimated variances (``n_strips`` given)
+    estimated: bool
+
+
+#: per-width polynomials of the dispersion check, widest first
+_DISPERSION_POWERS = {
+    True: [[0, 2, 4, 6, 8], [0, 2, 4, 6], [0, 2, 4], [0, 2]],
+    False: [list(range(d + 1)) for d in (6, 5, 4, 3, 2)],
+}
 
 
 def dispersion(data: ScalingData, symmetric: bool) -> Dispersion | None:
-    """Whether the points scatter as their error bars say, whatever the scaling form.
+    """Whether the points scatter as their error bars say, with no scaling form.
 
-    Each width's Γ(x) is fitted alone by the widest polynomial :func:`_width_poly` may use
-    (even, degree 6, on a self-dual slice [K7]; degree 4 otherwise) wherever that leaves
-    two or more degrees of freedom; the χ² summed over widths is referred to its
-    distribution, with estimated variances where ``n_strips`` is given (the fit's own
-    :func:`~sweepctl.fss.fit.gof_probability`). A scaling form constrains the same
-    points further (one function of ``(x − x_c) N^{1/ν}`` for all widths), so when this
-    probability is small no form can be acceptable: the data need smaller error bars
-    that are right (more strips), not another form. ``None`` if no width has enough
-    points.
+    Parameters
+    ----------
+    data
+        The slice's points.
+    symmetric
+        Self-dual slice ([K7] tests/REFERENCES.md): Γ is even in x, and even polynomials
+        are used.
+
+    Returns
+    -------
+    Dispersion or None
+        Each width's Γ(x) is fitted alone by the widest polynomial of
+        :data:`_DISPERSION_POWERS` that leaves two or more degrees of freedom (even, up to
+        degree 8, on a self-dual slice: on a grid symmetric about 0 with up to nine
+        couplings that fits the pair means exactly, and the check is then the duality test
+        of the pairs; up to degree 6 otherwise). The χ² summed over widths is referred to
+        its distribution, with estimated variances where ``n_strips`` is given (the fit's
+        own :func:`~sweepctl.fss.fit.gof_probability`, block-diagonal basis). ``None`` if no
+        width has enough points.
+
+    Notes
+    -----
+    This is not a bound on a scaling form's p (a form has fewer parameters and more
+    degrees of freedom, and need not be nested in these polynomials); it says whether the
+    points agree with their own error bars before any form is asked to.
     """
-    powers = [0, 2, 4, 6] if symmetric else [0, 1, 2, 3, 4]
-    blocks, rows, chi2 = [], [], 0.0
+    blocks, rows, chi2, degree = [], [], 0.0, 0
     for w in data.widths():
         m = np.flatnonzero(data.N == w)
-        if m.size < len(powers) + 2:
+        powers = next((p for p in _DISPERSION_POWERS[symmetric] if m.size >= len(p) + 2), None)
+        if powers is None:
             continue
         x, g, e = data.x[m], data.Gamma[m], data.Gamma_err[m]
         a = np.stack([x**k for k in powers], axis=1) / e[:, None]
@@ -112,6 +137,7 @@ def dispersion(data: ScalingData, symmetric: bool) -> Dispersion | None:
         chi2 += float(np.sum((a @ coef - g / e) ** 2))
         blocks.append(a)
         rows.append(m)
+        degree = max(degree, powers[-1])
     if not blocks:
         return None
     idx = np.concatenate(rows)
@@ -125,7 +151,7 @@ def dispersion(data: ScalingData, symmetric: bool) -> Dispersion | None:
     basis, _ = np.linalg.qr(design)
     strips = None if data.n_strips is None else data.n_strips[idx]
     p = gof_probability(chi2, basis, strips)
-    return Dispersion(chi2, int(idx.size - k), p, powers[-1])
+    return Dispersion(chi2, int(idx.size - k), p, degree, strips is not None)
 
 
 def _derivative(powers, coef, x, k):

@@ -136,37 +136,50 @@ def test_no_acceptable_form_gives_no_headline(tmp_path):
 
 def test_no_acceptable_form_says_whether_the_error_bars_hold(tmp_path):
     # The form-free check behind "no acceptable form": on a table whose noise is its error
-    # bars the check passes and the words blame the form; on another draw whose noise is
-    # twice the printed error bars it fails and the words say that no form can pass.
-    # (A first version rescaled the honest draw's errors by 1/1.6; its χ² is that draw's
-    # times 2.56, and that draw's was low, 20.3 for 35 dof: independent draws test this.)
+    # bars the check passes and the words blame the forms; on an independent draw whose
+    # noise is twice the printed error bars it fails and the words ask for more strips.
+    # (A first version rescaled the honest draw's errors by 1/1.6; that multiplies the
+    # honest draw's own χ² by 2.56, and that draw's was low: independent draws test this.)
     honest = syn.branchy(seed=1)  # orders 4,1,1,0: Γ(x) is an even degree-4 polynomial
     noisy = syn.make_table(
         2, syn.BRANCHY, syn.BRANCHY_THETA, syn.BRANCHY_F, syn.BRANCHY_WIDTHS, syn.BRANCHY_X, 2e-3
     )
-    for name, table, err, words, ok in [
-        ("honest", honest, honest.Gamma_err, "the error bars hold width by width", True),
-        ("small", noisy, noisy.Gamma_err / 2, "scatter beyond their error bars", False),
+    found = {}
+    for name, table, err, strips, words in [
+        ("honest", honest, honest.Gamma_err, None, "consistent with the points width by width"),
+        ("small", noisy, noisy.Gamma_err / 2, None, "scatter more than their error bars"),
+        ("small-many", noisy, noisy.Gamma_err / 2, 10**9, "scatter more than their error bars"),
+        ("small-16", noisy, noisy.Gamma_err / 2, 16, None),
     ]:
         df = pd.DataFrame(
             {"N": table.N.astype(int), "x": table.x, "Gamma": table.Gamma, "Gamma_err": err}
         )
         df["p_block"] = df["p_open"] = 0.0
+        if strips is not None:
+            df["n_strips"] = strips
         path = tmp_path / f"{name}.csv"
         df.to_csv(path, index=False)
         out = tmp_path / f"{name}.json"
         proc = cli("fit", path, "--orders", "2,0,1,0", "--resamples", "20", "--out", out)
         assert proc.returncode == 3, proc.stdout + proc.stderr
-        assert words in " ".join(proc.stdout.split()), proc.stdout
-        d = json.loads(out.read_text())["dispersion"]
-        # derived: 7 widths × (9 points − 4 even coefficients) = 35 dof
-        assert d["dof"] == 35 and d["degree"] == 6, d
-        if ok:
-            # noise drawn at the stated σ: p is uniform; below 1e-3 once in a thousand
-            assert d["p_value"] > 1e-3, d
-        else:
-            # derived: χ² = 4 χ²₃₅ here; p < 1e-3 needs χ² > 66.6, i.e. χ²₃₅ > 16.6 (99.6 %)
-            assert d["p_value"] < 1e-3, d
+        if words is not None:
+            assert words in " ".join(proc.stdout.split()), proc.stdout
+        found[name] = d = json.loads(out.read_text())["dispersion"]
+        # derived: 7 widths × (9 points − 5 even coefficients up to x⁸) = 28 dof
+        assert d["dof"] == 28 and d["degree"] == 8, d
+    h, s, many, few = (found[k] for k in ("honest", "small", "small-many", "small-16"))
+    # honest noise: p is uniform (this fixed draw gives p ≥ 0.1 — else the words above
+    # would differ — and p < 1e-3 would happen once in a thousand draws)
+    assert h["p_value"] > 1e-3 and not h["estimated_variances"], h
+    # derived: χ² = 4 χ²₂₈ here; p < 0.01 needs χ² > 48.3, i.e. χ²₂₈ > 12.1 (99.6 %)
+    assert s["p_value"] < 0.01, s
+    # derived: σ̂²/σ² ~ χ²(n − 1)/(n − 1) has sd √(2/n) ≈ 4.5e-5 at n = 10⁹: the
+    # estimated-variance probability is the χ² tail
+    assert many["estimated_variances"] and many["chi2"] == s["chi2"], many
+    assert abs(many["p_value"] - s["p_value"]) < 1e-3 * s["p_value"] + 1e-9, (many, s)
+    # [S2] tests/REFERENCES.md: estimated variances from 16 strips give the statistic a
+    # heavier tail, so the same χ² is less surprising
+    assert few["p_value"] > s["p_value"], (few, s)
 
 
 def test_fixed_y_sensitivity_when_the_choice_has_no_irrelevant_field():

@@ -11,9 +11,11 @@ whose own budget holds [P1], excludes [P9] and puts x_c at 0 in the general form
 strict xfail with what was measured: at 0.3 % per point these data do not decide.
 
 Measured beside it (not a test): the kernel's own duality at N = 16, x = ±0.24 with 384
-strips of 100 000 layers each gave Γ = 1.25991 ± 0.00071 and 1.25885 ± 0.00075, equal
-within 1σ, so the campaign's mild duality excess (χ² = 43.1 for 28 pairs) is not a
-kernel asymmetry.
+strips of 100 000 layers each gave Γ = 1.25991 ± 0.00071 and 1.25885 ± 0.00075, 1.0σ
+apart, where the campaign's pairs differed most; that clears the kernel there, not
+everywhere. The campaign's duality χ² (43.1 for 28 pairs) and its per-width dispersion
+both say the error bars look about 1.2 times small: a fluctuation, or strips less
+independent than assumed, which more strips alone would not cure.
 """
 
 from __future__ import annotations
@@ -92,8 +94,9 @@ def test_stored_campaign_is_self_dual(store):
 def test_no_confident_wrong_nu(fitted):
     # The procedure's promise on real data: either no acceptable form (exit 3, no
     # headline ν or Γ_c) or an acceptable fit whose budget holds [P1] and excludes [P9].
+    # On the stored data it takes the first branch (measured), where this checks only
+    # that `fit` keeps its word; the physics is the strict xfail below.
     res, proc = fitted
-    assert len(res["effective_exponents"]) == 6, res  # seven widths, adjacent pairs
     if proc.returncode == 3:
         assert not res["acceptable"] and res.get("nu") is None, res
         assert "no acceptable form" in proc.stdout, proc.stdout
@@ -108,13 +111,14 @@ def test_no_confident_wrong_nu(fitted):
 @pytest.mark.slow
 @pytest.mark.xfail(
     strict=True,
+    raises=AssertionError,
     reason=(
         "measured on the complete campaign (462 replicas): no acceptable form at any N_min "
         "(best p = 0.117 at N_min = 32 with ν undetermined; χ²/dof ≈ 1.5 with corrections "
-        "at every N_min); the data scatter beyond their error bars without any scaling "
-        "form (fit's dispersion check, an even degree-6 polynomial per width: χ² = 55.5 "
-        "for 35 dof, p = 0.021), so the published check needs more strips per point, "
-        "not another form"
+        "at every N_min); the points scatter more than their error bars suggest without "
+        "a scaling form too (fit's dispersion check, even degree 8 per width, i.e. the "
+        "duality test of the pairs: χ² = 43.1 for 28 dof, p = 0.043 with estimated "
+        "variances), so the check waits for more strips per point"
     ),
 )
 def test_budget_holds_the_published_value(store, fitted):
