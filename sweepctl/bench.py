@@ -13,8 +13,11 @@ node update costs ``48 N M`` (two columns of ``N`` pairs on ``M`` frame columns,
 node block and phase) and a Householder QR with explicit ``Q`` of a ``2N × M``
 frame ``8 (4 N M² − 2 M³/3)`` per re-orthogonalisation. The engine's certified CholeskyQR
 does about as many (two ``zherk`` and a ``ztrsm`` of ``8 N M²`` each, ``zpotrf``
-``4 M³/3``: ``24 N M² + 4 M³/3``, 25.3 N³ against 26.7 N³ at ``M = N``), so the rate is
-not inflated by counting the cheaper algorithm's flops as Householder's.
+``4 M³/3``: ``24 N M² + 4 M³/3``, 25.3 N³ against 26.7 N³ at ``M = N``). Up to
+``N ≈ 150`` the certificate's ``zherk`` runs in single precision (``cherk``, about half
+the time; ``sweepctl.kernel._qr.single_certificate``), which the count does not discount:
+the rate is Householder-equivalent flops per second, a measure of time per layer, not
+of double-precision flops executed.
 """
 
 from __future__ import annotations

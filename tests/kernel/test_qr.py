@@ -3,8 +3,9 @@
 from __future__ import annotations
 
 import numpy as np
+import scipy.linalg
 
-from sweepctl.kernel._qr import reorthogonalise
+from sweepctl.kernel._qr import _accept_threshold, reorthogonalise, single_certificate
 from sweepctl.kernel.schedule import ETA_MAX
 
 
@@ -71,3 +72,50 @@ def test_read_out_diagonal_is_that_of_the_frames_own_r():
     assert np.abs(plain - ref).max() > 1e-8
     # … and the read-out's agrees with Householder's to ~u κ (normwise backward error).
     assert np.allclose(read, ref, rtol=0, atol=1e-8)
+
+
+def _unitary(rng, n):
+    q, _ = np.linalg.qr(rng.standard_normal((n, n)) + 1j * rng.standard_normal((n, n)))
+    return q
+
+
+def _cholesky_qr_defect(a):
+    """[M9] tests/REFERENCES.md: plain CholeskyQR in NumPy, and its defect as the kernel
+    measures it (largest column sum of |Re| + |Im| of W^H W − I); inf if it breaks down."""
+    try:
+        r = np.linalg.cholesky(a.conj().T @ a).conj().T
+    except np.linalg.LinAlgError:
+        return np.inf
+    w = scipy.linalg.solve_triangular(r.T, a.T, lower=True).T
+    e = w.conj().T @ w - np.eye(a.shape[1])
+    return float((np.abs(e.real) + np.abs(e.imag)).sum(axis=0).max())
+
+
+def test_single_precision_certificate_holds_near_its_threshold():
+    """Frames of condition 3e5 … 3e8 put CholeskyQR's defect (≈ u κ², [M9]) on both sides of
+    1/32; the certificate is formed in single precision at these shapes (N = 32, 128)."""
+    rng = np.random.default_rng(14)
+    for rows, cols in ((64, 32), (256, 128)):
+        assert single_certificate(rows, cols)  # the path this test is about
+        accept = _accept_threshold(rows, cols, single=True)
+        outcomes = {"accepted near threshold": 0, "fell back": 0}
+        for kappa in np.geomspace(10**5.5, 10**8.5, 13):
+            sv = np.geomspace(1.0, 1.0 / kappa, cols)
+            a = (_unitary(rng, rows)[:, :cols] * sv) @ _unitary(rng, cols)
+            w = a[None].copy()
+            fb = np.zeros(1, dtype=np.int64)
+            reorthogonalise(w, cholesky=True, fallbacks=fb)
+            if fb[0] == 0:
+                defect = np.linalg.norm(w[0].conj().T @ w[0] - np.eye(cols), 2)
+                # [M9], [M10] tests/REFERENCES.md: an accepted frame is within ETA_MAX
+                assert defect <= ETA_MAX, (rows, kappa, defect)
+                if defect > 1e-3:
+                    outcomes["accepted near threshold"] += 1
+            else:
+                outcomes["fell back"] += 1
+                # [derived] a fallback only where CholeskyQR's own defect is near or above
+                # the threshold: a factor 3 allows for NumPy's and LAPACK's different
+                # rounding (measured here: within 2.5× of each other at κ ≤ 2e7)
+                assert _cholesky_qr_defect(a) > accept / 3, (rows, kappa)
+        # [derived] the sweep of κ reaches both sides of the threshold
+        assert outcomes["accepted near threshold"] >= 1 and outcomes["fell back"] >= 1, outcomes
