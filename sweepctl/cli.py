@@ -207,12 +207,16 @@ def bench(
 
 # ----------------------------------------------------------------------------- campaigns
 
-StoreArg = Annotated[Path, typer.Argument(help="Campaign store directory.")]
+StoreArg = Annotated[Path, typer.Argument(help="Campaign store directory.", metavar="STORE")]
 #: the store after the recipe (run, plan, cluster submit): an argument like everywhere
 #: else; ``--store`` stays accepted, hidden, for scripts written before
 StoreAfterRecipe = Annotated[
     Path | None,
-    typer.Argument(help="Campaign store directory (made by the first run).", show_default=False),
+    typer.Argument(
+        help="Campaign store directory (made by the first run).",
+        show_default=False,
+        metavar="STORE",
+    ),
 ]
 StoreOptionOld = Annotated[
     Path | None,
@@ -232,7 +236,7 @@ def _one_store(arg: Path | None, opt: Path | None, usage: str, required: bool = 
     return store
 
 
-RecipeArg = Annotated[Path, typer.Argument(help="Recipe file (TOML).")]
+RecipeArg = Annotated[Path, typer.Argument(help="Recipe file (TOML).", metavar="RECIPE")]
 CalibrationOpt = Annotated[
     Path | None,
     typer.Option("--calibration", help="Kernel calibration from `sweepctl bench --out FILE`."),
@@ -264,7 +268,9 @@ def _duration(seconds: float | None) -> str:
 
 @app.command()
 def new(
-    path: Annotated[Path, typer.Argument(help="Recipe file to create (never overwritten).")],
+    path: Annotated[
+        Path, typer.Argument(help="Recipe file to create (never overwritten).", metavar="RECIPE")
+    ],
     name: Annotated[
         str | None,
         typer.Option("--name", help="Campaign name (default: the file name without .toml)."),
@@ -288,6 +294,7 @@ def plan(
         typer.Argument(
             help="A store: preview what `run` would do there (new and reopened points).",
             show_default=False,
+            metavar="STORE",
         ),
     ] = None,
     json_out: Annotated[bool, typer.Option("--json", help="Print the plan as JSON.")] = False,
@@ -660,7 +667,9 @@ app.add_typer(cluster_app, name="cluster")
 
 @cluster_app.command("script")
 def cluster_script(
-    profile: Annotated[str, typer.Argument(help="Profile name (or slurm/pbs/sge/lsf).")],
+    profile: Annotated[
+        str, typer.Argument(help="Profile name (or slurm/pbs/sge/lsf).", metavar="PROFILE")
+    ],
     profiles: Annotated[Path | None, typer.Option("--profiles", help="Profile file.")] = None,
     walltime: Annotated[
         str | None,
@@ -695,7 +704,9 @@ def cluster_list(
 
 @cluster_app.command("show")
 def cluster_show(
-    name: Annotated[str, typer.Argument(help="Profile name (or slurm/pbs/sge/lsf).")],
+    name: Annotated[
+        str, typer.Argument(help="Profile name (or slurm/pbs/sge/lsf).", metavar="PROFILE")
+    ],
     profiles: Annotated[Path | None, typer.Option("--profiles", help="Profile file.")] = None,
 ) -> None:
     """Print a profile's resolved settings (packaged defaults < file < command line)."""
@@ -797,7 +808,8 @@ def cluster_stop(
 @cluster_app.command("link", hidden=True)
 def cluster_link(
     store_arg: Annotated[
-        Path | None, typer.Argument(help="Campaign store directory.", show_default=False)
+        Path | None,
+        typer.Argument(help="Campaign store directory.", show_default=False, metavar="STORE"),
     ] = None,
     store_opt: StoreOptionOld = None,
     calibration: CalibrationOpt = None,
@@ -1264,7 +1276,9 @@ def _rich_table(title: str, head: list[str], rows: list[list[str]]) -> Table:
 
 @app.command("fit")
 def fit_cmd(
-    source: Annotated[Path, typer.Argument(help="A store, or a points table (CSV/Parquet).")],
+    source: Annotated[
+        Path, typer.Argument(help="A store, or a points table (CSV/Parquet).", metavar="SOURCE")
+    ],
     orders: Annotated[
         str | None,
         typer.Option(
@@ -1389,7 +1403,7 @@ def fit_cmd(
 
 @app.command("report")
 def report_cmd(
-    store: Annotated[Path, typer.Argument(help="Campaign store directory.")],
+    store: Annotated[Path, typer.Argument(help="Campaign store directory.", metavar="STORE")],
     out: Annotated[Path, typer.Option("--out", help="Directory for the report files.")],
     orders: Annotated[
         str | None,

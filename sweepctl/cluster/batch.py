@@ -265,9 +265,18 @@ def list_profiles(profiles_file: str | Path | None = None) -> tuple[Path | None,
     return path, rows
 
 
+def _plain(value: Any) -> str:
+    """A setting as a user would write it, not as Python prints it."""
+    if value is None:
+        return "(not set)"
+    if isinstance(value, (list, tuple)):
+        return "; ".join(str(v) for v in value) if value else "(none)"
+    return str(value)
+
+
 def describe_profile(p: Profile) -> list[tuple[str, str]]:
     """A resolved profile as (setting, value) lines, with the derived worker lifetime."""
-    out = [(f.name, repr(getattr(p, f.name))) for f in fields(p)]
+    out = [(f.name, _plain(getattr(p, f.name))) for f in fields(p)]
     life = p.lifetime_seconds
     out.append(("worker lifetime", "until the walltime" if life is None else f"{life} s"))
     out.append(("replica seconds", f"{p.replica_seconds():.0f} (suggested replica duration)"))

@@ -72,7 +72,8 @@ def test_cluster_list_and_show(tmp_path):
     assert proc.returncode == 0, proc.stderr
     out = dict(ln.split(None, 1) for ln in proc.stdout.splitlines() if ln.strip() and ln[0] != " ")
     # from the file: system, walltime, queue; from the packaged defaults: the lifetime margin
-    assert out["system"] == "'pbs'" and out["walltime"] == "'48:00:00'"
-    assert out["queue"] == "'long'" and out["lifetime_margin"] == "'10m'"
+    assert out["system"] == "pbs" and out["walltime"] == "48:00:00"
+    assert out["queue"] == "long" and out["lifetime_margin"] == "10m"
+    assert out["account"] == "qh2026" and out["interface"] == "(not set)"  # no reprs
     proc = cli("cluster", "show", "nope", "--profiles", EXAMPLES)
     assert proc.returncode == 2 and "slurm-standard" in proc.stderr  # lists the known ones
