@@ -22,6 +22,7 @@ of double-precision flops executed.
 
 from __future__ import annotations
 
+import hashlib
 import json
 import math
 import os
@@ -225,11 +226,22 @@ def calibration_path() -> Path:
     return Path(base) / "sweepctl" / f"calibration-{platform.node() or 'host'}.json"
 
 
+def kernel_fingerprint() -> str:
+    """SHA-256 (first 16 hex digits) of the kernel's source files: a calibration measured
+    with other kernel code prices replicas by the old code's speed, so the cache is
+    measured again when this changes."""
+    digest = hashlib.sha256()
+    for path in sorted((Path(__file__).parent / "kernel").glob("*.py")):
+        digest.update(path.name.encode() + b"\0" + path.read_bytes())
+    return digest.hexdigest()[:16]
+
+
 def calibration_payload(rows: list[BenchRow], gemm: float | None = None) -> dict:
     """The JSON document ``sweepctl bench --out FILE`` writes and cost models read."""
     return {
         "kind": "sweepctl-kernel-calibration",
         "format": CALIBRATION_FORMAT,
+        "kernel": kernel_fingerprint(),
         "machine": machine_info(),
         "zgemm_gflops": gemm,
         "widths": [r.as_dict() for r in rows],
@@ -240,7 +252,8 @@ def cost_model(widths: list[int], path: str | Path | None = None, measure: bool 
     """A :class:`~sweepctl.campaign.cost.CostModel` and where it came from.
 
     ``path`` (a ``sweepctl bench --out`` file) wins; then this machine's cached
-    calibration; otherwise a short measurement at ``widths`` (saved to the cache).
+    calibration, if the same kernel code measured it (:func:`kernel_fingerprint`);
+    otherwise a short measurement at ``widths`` (saved to the cache).
     Returns ``(None, reason)`` when nothing is stored and ``measure`` is false.
     """
     from sweepctl.campaign.cost import CostModel
@@ -262,7 +275,10 @@ def cost_model(widths: list[int], path: str | Path | None = None, measure: bool 
     if cached.exists():
         try:
             data = json.loads(cached.read_text())
-            if data.get("format") == CALIBRATION_FORMAT:  # an older one is measured again
+            # one from an older format or other kernel code is measured again
+            if data.get("format") == CALIBRATION_FORMAT and data.get("kernel") == (
+                kernel_fingerprint()
+            ):
                 known = list(data["widths"])
                 have = sorted(int(r["width"]) for r in known)
                 # a width outside the cached range would be priced by extrapolation

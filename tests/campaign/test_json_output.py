@@ -91,6 +91,15 @@ def test_plan_says_where_it_keeps_the_calibration_it_measured(tmp_path):
     assert f"calibration {saved}, with N = 24 measured now" in proc.stdout, proc.stdout
     widths = {r["width"] for r in json.loads(saved.read_text())["widths"]}
     assert {2, 3, 4, 24} <= widths, widths
+    # a cache measured with other kernel code (here: its fingerprint changed) prices by
+    # the old speed: it is measured again, not used
+    data = json.loads(saved.read_text())
+    data["kernel"] = "0" * 16
+    saved.write_text(json.dumps(data))
+    proc = cli("plan", recipe, env={"XDG_CACHE_HOME": str(cache), "COLUMNS": "400"})
+    assert proc.returncode == 0, proc.stderr
+    assert f"measured now at N = 2, 3, 4, saved to {saved}" in proc.stdout, proc.stdout
+    assert json.loads(saved.read_text())["kernel"] != "0" * 16
 
 
 def test_the_store_is_an_argument_like_everywhere_else(reference_store, tmp_path):
