@@ -14,7 +14,7 @@ node block and phase) and a Householder QR with explicit ``Q`` of a ``2N × M``
 frame ``8 (4 N M² − 2 M³/3)`` per re-orthogonalisation. The engine's certified CholeskyQR
 does about as many (two ``zherk`` and a ``ztrsm`` of ``8 N M²`` each, ``zpotrf``
 ``4 M³/3``: ``24 N M² + 4 M³/3``, 25.3 N³ against 26.7 N³ at ``M = N``). Up to
-``N ≈ 150`` the certificate's ``zherk`` runs in single precision (``cherk``, about half
+``N = 178`` the certificate's ``zherk`` runs in single precision (``cherk``, about half
 the time; ``sweepctl.kernel._qr.single_certificate``), which the count does not discount:
 the rate is Householder-equivalent flops per second, a measure of time per layer, not
 of double-precision flops executed.
@@ -227,12 +227,17 @@ def calibration_path() -> Path:
 
 
 def kernel_fingerprint() -> str:
-    """SHA-256 (first 16 hex digits) of the kernel's source files: a calibration measured
-    with other kernel code prices replicas by the old code's speed, so the cache is
+    """SHA-256 (first 16 hex digits) of the kernel's source files and of the versions of
+    the libraries its speed depends on (NumPy, SciPy with its BLAS, numba): a calibration
+    measured with other code prices replicas by that code's speed, so the cache is
     measured again when this changes."""
+    from importlib.metadata import version
+
     digest = hashlib.sha256()
     for path in sorted((Path(__file__).parent / "kernel").glob("*.py")):
         digest.update(path.name.encode() + b"\0" + path.read_bytes())
+    for package in ("numpy", "scipy", "numba"):
+        digest.update(f"{package}={version(package)}".encode())
     return digest.hexdigest()[:16]
 
 

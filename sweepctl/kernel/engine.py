@@ -20,7 +20,7 @@ and with it every bit of the result, is independent of how the layers are chunke
 QR method and accuracy. Scheduled QRs are CholeskyQR ([M9] tests/REFERENCES.md):
 ``G = A^H A``, ``R = chol(G)``, ``W = A R^{-1}``, all BLAS-3, followed by a certificate
 ``η ≥ ||W^H W − I||_2`` computed from a second Gram matrix (for frames up to
-``N ≈ 150`` in single precision from a rounded copy of ``W``, at half the cost, its
+``N = 178`` in single precision from a rounded copy of ``W``, at half the cost, its
 rounding subtracted from the threshold: [M10] tests/REFERENCES.md,
 ``_qr._accept_threshold``). The strip is accepted if the Cholesky factorisation
 succeeded and ``η`` is within ``1/32`` less that rounding; otherwise that strip's frame is

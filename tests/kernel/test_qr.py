@@ -79,43 +79,56 @@ def _unitary(rng, n):
     return q
 
 
+def _defect(w):
+    """The certificate's measure of a frame: largest column sum of |Re| + |Im| of W^H W − I
+    (bounds ||W^H W − I||_2, [M9] tests/REFERENCES.md), in double precision."""
+    e = w.conj().T @ w - np.eye(w.shape[1])
+    return float((np.abs(e.real) + np.abs(e.imag)).sum(axis=0).max())
+
+
 def _cholesky_qr_defect(a):
-    """[M9] tests/REFERENCES.md: plain CholeskyQR in NumPy, and its defect as the kernel
-    measures it (largest column sum of |Re| + |Im| of W^H W − I); inf if it breaks down."""
+    """[M9] tests/REFERENCES.md: plain CholeskyQR in NumPy (independent of the kernel's
+    BLAS calls) and the defect of its W; inf if Cholesky breaks down."""
     try:
         r = np.linalg.cholesky(a.conj().T @ a).conj().T
     except np.linalg.LinAlgError:
         return np.inf
-    w = scipy.linalg.solve_triangular(r.T, a.T, lower=True).T
-    e = w.conj().T @ w - np.eye(a.shape[1])
-    return float((np.abs(e.real) + np.abs(e.imag)).sum(axis=0).max())
+    return _defect(scipy.linalg.solve_triangular(r.T, a.T, lower=True).T)
 
 
 def test_single_precision_certificate_holds_near_its_threshold():
-    """Frames of condition 3e5 … 3e8 put CholeskyQR's defect (≈ u κ², [M9]) on both sides of
-    1/32; the certificate is formed in single precision at these shapes (N = 32, 128)."""
+    """Frames of condition 3e5 … 3e8 (densely 2e7 … 6e7) put CholeskyQR's defect (≈ u κ²,
+    [M9]) on both sides of 1/32; the certificate is formed in single precision at these
+    shapes (N = 32, 128)."""
     rng = np.random.default_rng(14)
     for rows, cols in ((64, 32), (256, 128)):
         assert single_certificate(rows, cols)  # the path this test is about
         accept = _accept_threshold(rows, cols, single=True)
-        outcomes = {"accepted near threshold": 0, "fell back": 0}
-        for kappa in np.geomspace(10**5.5, 10**8.5, 13):
+        near, rejected = 0, 0
+        # a coarse sweep, then a dense one where the defect crosses 1/32 (so that a
+        # threshold looser than 1/32 would accept frames beyond it)
+        kappas = np.concatenate([np.geomspace(10**5.5, 10**8.5, 13), np.geomspace(2e7, 6e7, 32)])
+        for kappa in kappas:
             sv = np.geomspace(1.0, 1.0 / kappa, cols)
             a = (_unitary(rng, rows)[:, :cols] * sv) @ _unitary(rng, cols)
             w = a[None].copy()
             fb = np.zeros(1, dtype=np.int64)
             reorthogonalise(w, cholesky=True, fallbacks=fb)
+            plain = _cholesky_qr_defect(a)
             if fb[0] == 0:
-                defect = np.linalg.norm(w[0].conj().T @ w[0] - np.eye(cols), 2)
-                # [M9], [M10] tests/REFERENCES.md: an accepted frame is within ETA_MAX
+                defect = _defect(w[0])
+                # [M9], [M10] tests/REFERENCES.md: an accepted frame is within ETA_MAX in
+                # the certificate's own measure (so also in the 2-norm)
                 assert defect <= ETA_MAX, (rows, kappa, defect)
-                if defect > 1e-3:
-                    outcomes["accepted near threshold"] += 1
-            else:
-                outcomes["fell back"] += 1
-                # [derived] a fallback only where CholeskyQR's own defect is near or above
-                # the threshold: a factor 3 allows for NumPy's and LAPACK's different
-                # rounding (measured here: within 2.5× of each other at κ ≤ 2e7)
-                assert _cholesky_qr_defect(a) > accept / 3, (rows, kappa)
-        # [derived] the sweep of κ reaches both sides of the threshold
-        assert outcomes["accepted near threshold"] >= 1 and outcomes["fell back"] >= 1, outcomes
+                near += defect > 1e-3
+            # The factor 6 is measured, not derived: on 218 accepted frames of these
+            # sweeps (seeds 20-25) NumPy's CholeskyQR defect was 0.32-3.24 times the
+            # kernel's (two implementations' rounding of the same ill-conditioned input).
+            if plain < accept / 6:
+                assert fb[0] == 0, (rows, kappa, plain)  # no needless fallback
+            if np.isfinite(plain) and plain > 6 * ETA_MAX:
+                assert fb[0] == 1, (rows, kappa, plain)  # rejected by the certificate
+                rejected += 1
+        # [derived] the sweep reaches both sides of the threshold, and the rejections
+        # counted are the certificate's (Cholesky succeeded), not breakdowns
+        assert near >= 1 and rejected >= 1, (rows, near, rejected)
