@@ -184,16 +184,19 @@ def status_rows(store: Store, cost: CostModel | None) -> tuple[list[dict], dict]
     live = driver["state"] == "running"
     out = []
     remaining = 0.0
+    unpriced = 0  # points with replicas left but no calibration to price them
     for pp in sorted(progress.values(), key=lambda q: q.point):
         g = np.concatenate([pp.done[r] for r in sorted(pp.done)]) if pp.done else np.array([])
         mean = float(np.mean(g)) if g.size else math.nan
         rel = pp.rel_err()
         missing = max(0, pp.wanted - len(pp.done))
-        secs = (
-            missing * cost.replica_seconds(pp.point, pp.layers, pp.warmup, frozen.strips)
-            if cost is not None
-            else math.nan
-        )
+        if missing == 0:
+            secs = 0.0  # nothing left to price, with or without a calibration
+        elif cost is not None:
+            secs = missing * cost.replica_seconds(pp.point, pp.layers, pp.warmup, frozen.strips)
+        else:
+            secs = math.nan
+        unpriced += math.isnan(secs)
         remaining += 0.0 if math.isnan(secs) else secs
         state = (
             "done"
@@ -231,7 +234,7 @@ def status_rows(store: Store, cost: CostModel | None) -> tuple[list[dict], dict]
         "partial": sum(r["state"] == "partial" for r in out),
         "pending": sum(r["state"] == "pending" for r in out),
         "replicas": sum(r["replicas"] for r in out),
-        "remaining_cpu_hours": remaining / 3600.0 if cost is not None else None,
+        "remaining_cpu_hours": remaining / 3600.0 if not unpriced else None,
         "note": "remaining cost counts the current round; a point may need further rounds",
         "driver": driver,
         "last_event": store.last_event(),

@@ -120,3 +120,16 @@ def test_the_store_is_an_argument_like_everywhere_else(reference_store, tmp_path
     assert not (tmp_path / "a").exists() and not (tmp_path / "b").exists()
     proc = cli("run", recipe)
     assert proc.returncode == 2 and "STORE: missing" in proc.stderr
+
+
+def test_a_finished_store_has_nothing_left_even_without_a_calibration(reference_store, tmp_path):
+    # a newcomer's machine has no calibration cached; a finished point still has 0 left
+    # (it used to print "?", as if the cost were unknown)
+    env = {"XDG_CACHE_HOME": str(tmp_path / "empty-cache")}
+    proc = cli("status", reference_store, "--json", env=env)
+    assert proc.returncode == 0, proc.stderr
+    data = json.loads(proc.stdout)
+    assert data["totals"]["done"] == data["totals"]["points"]  # the fixture ran to the end
+    assert data["totals"]["remaining_cpu_hours"] == 0.0
+    assert all(p["remaining_cpu_hours"] == 0.0 for p in data["points"])
+    assert not (tmp_path / "empty-cache").exists()  # status measures nothing
